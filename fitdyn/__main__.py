@@ -1,0 +1,5 @@
+"""Entry point for ``python -m fitdyn``."""
+
+from fitdyn.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,423 @@
+"""The estimator protocol, its result type and the batched least-squares core.
+
+Most estimators are linear regressions in disguise: each turns a recording into a
+*design* ``Y = Z C + intercepts + E`` and maps the coefficients ``C`` back to the
+system ``dx/dt = A x + b``.  The solve is batched over a leading replicate axis, so
+the point estimate is the one-replicate case of exactly the code the bootstrap runs:
+
+* row-resampling schemes (moving blocks, cases) pass replicate *weights* ``w`` of
+  shape ``(B, m)`` (the multiplicity of each row in the resample) with the original
+  ``Z`` and ``Y``;
+* regenerating schemes (recursive residual, parametric) pass replicate designs
+  ``Z`` of shape ``(B, m, p)`` and ``Y`` of shape ``(B, m, 2)``.
+
+Estimators that are not linear regressions (the output-error trajectory fit)
+override :meth:`Estimator.fit` and :meth:`Estimator.fit_values`.
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from dataclasses import dataclass, field
+from typing import Any, ClassVar
+
+import numpy as np
+
+from fitdyn import linalg2
+from fitdyn.recording import Recording
+
+__all__ = [
+    "PARAMETERS",
+    "Design",
+    "Estimate",
+    "SystemBatch",
+    "Estimator",
+    "lstsq",
+    "equilibrium_from",
+]
+
+#: Names of the parameters whose covariance an Estimate may carry, in order.
+PARAMETERS: tuple[str, ...] = ("a11", "a12", "a21", "a22", "b1", "b2")
+
+
+@dataclass(frozen=True)
+class Design:
+    """Regression form ``Y = Z C + intercept[group] + E`` of one recording.
+
+    Attributes
+    ----------
+    Z : ndarray, shape (m, p) or (B, m, p)
+        Regressors.
+    Y : ndarray, shape (m, 2) or (B, m, 2)
+        Targets.
+    groups : int ndarray, shape (m,), or None
+        Intercept group of each row (one free intercept per group, estimated by
+        centring within groups); ``None`` for no intercept.
+    row_segment : int ndarray, shape (m,)
+        Gap-free segment of each row (moving blocks never cross segments).
+    row_trajectory : int ndarray, shape (m,)
+        Trajectory of each row (case resampling draws whole trajectories).
+    row_index : int ndarray, shape (m,)
+        Index into the recording's samples that each row belongs to (the sample
+        the row's target refers to).
+    info : dict
+        Whatever the estimator needs to map coefficients back (step, known
+        equilibrium, column meaning...).
+    """
+
+    Z: np.ndarray
+    Y: np.ndarray
+    groups: np.ndarray | None
+    row_segment: np.ndarray
+    row_trajectory: np.ndarray
+    row_index: np.ndarray
+    info: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def n_rows(self) -> int:
+        """Number of regression rows."""
+        return int(self.Z.shape[-2])
+
+    @property
+    def n_coef(self) -> int:
+        """Number of slope coefficients (intercepts not counted)."""
+        return int(self.Z.shape[-1])
+
+    @property
+    def n_groups(self) -> int:
+        """Number of intercept groups (0 without intercepts)."""
+        return 0 if self.groups is None else int(self.groups.max()) + 1
+
+
+@dataclass(frozen=True)
+class SystemBatch:
+    """A batch of fitted systems ``dx/dt = A x + b``.
+
+    Attributes
+    ----------
+    matrix : ndarray, shape (B, 2, 2)
+    offset : ndarray, shape (B, 2)
+        ``b``; the equilibrium is ``-A^{-1} b`` where ``A`` is invertible.
+    valid : bool ndarray, shape (B,)
+        False where the estimator could not map the coefficients to a real system
+        (e.g. no real logarithm of the one-step matrix).  Such replicates are kept
+        and reported, never silently redrawn.
+    """
+
+    matrix: np.ndarray
+    offset: np.ndarray
+    valid: np.ndarray
+
+    def equilibrium(self, rtol: float = 1e-9) -> np.ndarray:
+        """Equilibria, NaN where ``A`` is (numerically) singular."""
+        return equilibrium_from(self.matrix, self.offset, rtol)
+
+
+def equilibrium_from(matrix: np.ndarray, offset: np.ndarray, rtol: float = 1e-9) -> np.ndarray:
+    """``x* = -A^{-1} b``, NaN where ``|det A| <= rtol * ||A||_F^2``.
+
+    Parameters
+    ----------
+    matrix : ndarray, shape (..., 2, 2)
+    offset : ndarray, shape (..., 2)
+    rtol : float
+        Relative singularity threshold.
+
+    Returns
+    -------
+    ndarray, shape (..., 2)
+    """
+    matrix = np.asarray(matrix, dtype=float)
+    _, det, _ = linalg2.invariants(matrix)
+    norm2 = np.sum(matrix * matrix, axis=(-2, -1))
+    singular = np.abs(det) <= rtol * norm2
+    with np.errstate(divide="ignore", invalid="ignore"):
+        x = -linalg2.solve(matrix, offset)
+    return np.where(singular[..., None], np.nan, x)
+
+
+def lstsq(
+    Z: np.ndarray,
+    Y: np.ndarray,
+    groups: np.ndarray | None = None,
+    w: np.ndarray | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Batched (weighted) least squares with optional per-group intercepts.
+
+    Solves ``min sum_i w_i || Y_i - Z_i C - c_{g(i)} ||^2`` for every replicate.
+    Columns are centred within groups and scaled before the normal equations are
+    formed, which keeps them well conditioned for data far from the origin.
+
+    Parameters
+    ----------
+    Z : ndarray, shape (m, p) or (B, m, p)
+    Y : ndarray, shape (m, k) or (B, m, k)
+    groups : int ndarray, shape (m,), or None
+        Intercept group of each row; ``None`` fits no intercept.
+    w : ndarray, shape (m,) or (B, m), optional
+        Non-negative row weights (resampling multiplicities).
+
+    Returns
+    -------
+    C : ndarray, shape (B, p, k)
+        Slope coefficients (``B = 1`` when nothing is batched).
+    c : ndarray, shape (B, G, k)
+        Intercepts per group (``G = 0`` without groups).
+    """
+    Z = np.asarray(Z, dtype=float)
+    Y = np.asarray(Y, dtype=float)
+    if Z.ndim == 2:
+        Z = Z[None]
+    if Y.ndim == 2:
+        Y = Y[None]
+    m = Z.shape[-2]
+    if w is None:
+        W = np.ones((1, m))
+    else:
+        W = np.asarray(w, dtype=float)
+        W = W[None] if W.ndim == 1 else W
+    B = max(Z.shape[0], Y.shape[0], W.shape[0])
+    p = Z.shape[-1]
+    k = Y.shape[-1]
+
+    if groups is not None:
+        G = int(np.max(groups)) + 1
+        onehot = np.zeros((m, G))
+        onehot[np.arange(m), groups] = 1.0
+        wsum = W @ onehot  # (B?, G)
+        safe = np.where(wsum > 0, wsum, 1.0)
+        zmean = np.einsum("bm,mg,bmp->bgp", W, onehot, Z) / safe[..., None]
+        ymean = np.einsum("bm,mg,bmk->bgk", W, onehot, Y) / safe[..., None]
+        Zc = Z - zmean[:, groups, :]
+        Yc = Y - ymean[:, groups, :]
+    else:
+        G = 0
+        Zc, Yc = Z, Y
+
+    scale = np.sqrt(np.mean(Zc * Zc, axis=-2, keepdims=True))  # (B?, 1, p)
+    scale = np.where(scale > 0, scale, 1.0)
+    Zs = Zc / scale
+    ZtZ = np.einsum("bm,bmp,bmq->bpq", W, Zs, Zs)
+    ZtY = np.einsum("bm,bmp,bmk->bpk", W, Zs, Yc)
+    ZtZ = np.broadcast_to(ZtZ, (B, p, p))
+    ZtY = np.broadcast_to(ZtY, (B, p, k))
+    # a rank-deficient replicate (e.g. a resample of one repeated row) yields NaN
+    # rather than an exception, and is flagged invalid downstream
+    ok = np.linalg.cond(ZtZ) < 1e14
+    Cs = np.full((B, p, k), np.nan)
+    if ok.any():
+        Cs[ok] = np.linalg.solve(ZtZ[ok], ZtY[ok])
+    C = Cs / np.broadcast_to(scale, (B, 1, p)).transpose(0, 2, 1)
+    if G:
+        c = np.broadcast_to(ymean, (B, G, k)) - np.einsum(
+            "bgp,bpk->bgk", np.broadcast_to(zmean, (B, G, p)), C
+        )
+    else:
+        c = np.zeros((B, 0, k))
+    return C, c
+
+
+@dataclass(frozen=True)
+class Estimate:
+    """What an estimator returns for one recording.
+
+    Attributes
+    ----------
+    method : str
+        Estimator name.
+    matrix : ndarray, shape (2, 2)
+        The system matrix ``A``.
+    offset : ndarray, shape (2,)
+        ``b`` in ``dx/dt = A x + b``.
+    equilibrium : ndarray, shape (2,), or None
+        ``x* = -A^{-1} b``; ``None`` where ``A`` is singular (no unique equilibrium).
+    equilibrium_known : bool
+        Whether the equilibrium was given by the user rather than estimated.
+    residuals : ndarray, shape (m, 2)
+        The estimator's own residuals (in its own regression form).
+    residual_cov : ndarray, shape (2, 2)
+        Their covariance (degrees of freedom corrected).
+    n_used : int
+        Number of regression rows (or samples) used.
+    settings : dict
+        The method's own settings, as used.
+    param_cov : ndarray, shape (6, 6), or None
+        Asymptotic covariance of ``(a11, a12, a21, a22, b1, b2)`` (see
+        :data:`PARAMETERS`), where the estimator provides one.
+    notes : tuple of str
+        Facts about the fit (e.g. why ``auto`` chose this method).
+    warnings : tuple of str
+        Things the user must know (aliasing risk, weak identifiability...).
+    extra : dict
+        Estimator-specific results (e.g. the one-step matrix of the discrete fit,
+        fitted initial states of the trajectory fit).
+    """
+
+    method: str
+    matrix: np.ndarray
+    offset: np.ndarray
+    equilibrium: np.ndarray | None
+    equilibrium_known: bool
+    residuals: np.ndarray
+    residual_cov: np.ndarray
+    n_used: int
+    settings: dict[str, Any]
+    param_cov: np.ndarray | None = None
+    notes: tuple[str, ...] = ()
+    warnings: tuple[str, ...] = ()
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready description."""
+        eq = None if self.equilibrium is None else [float(v) for v in self.equilibrium]
+        return {
+            "method": self.method,
+            "matrix": np.asarray(self.matrix, dtype=float).tolist(),
+            "offset": np.asarray(self.offset, dtype=float).tolist(),
+            "equilibrium": eq,
+            "equilibrium_known": self.equilibrium_known,
+            "residual_cov": np.asarray(self.residual_cov, dtype=float).tolist(),
+            "n_used": int(self.n_used),
+            "settings": _jsonable(self.settings),
+            "notes": list(self.notes),
+            "warnings": list(self.warnings),
+        }
+
+
+def _jsonable(obj: Any) -> Any:
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, list | tuple):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, np.generic):
+        return obj.item()
+    return obj
+
+
+class Estimator(ABC):
+    """Base class of every estimator.
+
+    Subclasses set :attr:`name`, accept their settings as keyword arguments in
+    ``__init__`` (stored in :attr:`settings`) and implement :meth:`design` and
+    :meth:`to_system`; the base class then provides :meth:`fit` (the point
+    estimate) and :meth:`fit_design` (the batched solve the bootstrap calls).
+
+    Parameters
+    ----------
+    **settings
+        Method-specific settings.
+    """
+
+    name: ClassVar[str] = "base"
+    #: whether the estimator needs a uniform time step
+    needs_uniform_steps: ClassVar[bool] = False
+    #: whether the estimator is a linear regression (design / to_system)
+    is_regression: ClassVar[bool] = True
+
+    def __init__(self, **settings: Any) -> None:
+        self.settings: dict[str, Any] = dict(settings)
+
+    # -- the regression form ----------------------------------------------------
+    @abstractmethod
+    def design(
+        self,
+        rec: Recording,
+        equilibrium: np.ndarray | None = None,
+        values: np.ndarray | None = None,
+    ) -> Design:
+        """Regression form of a recording.
+
+        Parameters
+        ----------
+        rec : Recording
+        equilibrium : ndarray, shape (2,), optional
+            A known equilibrium (no intercept is then fitted for the offset).
+        values : ndarray, shape (B, n, 2), optional
+            Replicate channel values on ``rec``'s sampling (parametric bootstrap);
+            the design then carries a leading batch axis.
+        """
+
+    @abstractmethod
+    def to_system(self, C: np.ndarray, c: np.ndarray, design: Design) -> SystemBatch:
+        """Map batched coefficients ``C`` (B, p, 2) and intercepts ``c`` (B, G, 2)."""
+
+    def fit_design(self, design: Design, w: np.ndarray | None = None) -> SystemBatch:
+        """Batched solve: the coefficients for every replicate, mapped to systems."""
+        C, c = lstsq(design.Z, design.Y, design.groups, w)
+        return self.to_system(C, c, design)
+
+    def fit_values(
+        self, rec: Recording, values: np.ndarray, equilibrium: np.ndarray | None = None
+    ) -> SystemBatch:
+        """Refit on replicate values (B, n, 2) sharing ``rec``'s sampling."""
+        return self.fit_design(self.design(rec, equilibrium, values))
+
+    # -- the point estimate -------------------------------------------------------
+    def fit(self, rec: Recording, equilibrium: np.ndarray | None = None) -> Estimate:
+        """Point estimate: the one-replicate case of :meth:`fit_design`."""
+        d = self.design(rec, equilibrium)
+        C, c = lstsq(d.Z, d.Y, d.groups)
+        sysb = self.to_system(C, c, d)
+        return self.make_estimate(rec, d, C[0], c[0], sysb, equilibrium)
+
+    def make_estimate(
+        self,
+        rec: Recording,
+        d: Design,
+        C: np.ndarray,
+        c: np.ndarray,
+        sysb: SystemBatch,
+        equilibrium: np.ndarray | None,
+    ) -> Estimate:
+        """Assemble the :class:`Estimate` (residuals, covariance, warnings)."""
+        resid = d.Y - d.Z @ C
+        if d.groups is not None:
+            resid = resid - c[d.groups]
+        dof = max(d.n_rows - d.n_coef - d.n_groups, 1)
+        rcov = resid.T @ resid / dof
+        A = sysb.matrix[0]
+        b = sysb.offset[0]
+        eq = (
+            np.asarray(equilibrium, dtype=float)
+            if equilibrium is not None
+            else sysb.equilibrium()[0]
+        )
+        eq_out = None if np.any(np.isnan(eq)) else eq
+        return Estimate(
+            method=self.name,
+            matrix=A,
+            offset=b,
+            equilibrium=eq_out,
+            equilibrium_known=equilibrium is not None,
+            residuals=resid,
+            residual_cov=rcov,
+            n_used=d.n_rows,
+            settings=dict(self.settings),
+            param_cov=self.parameter_covariance(d, C, c, rcov, sysb),
+            notes=tuple(self.notes(rec, d, sysb)),
+            warnings=tuple(self.warnings(rec, d, sysb)),
+            extra=self.extra(rec, d, C, c, sysb),
+        )
+
+    # -- hooks subclasses may override ----------------------------------------------
+    def parameter_covariance(
+        self, d: Design, C: np.ndarray, c: np.ndarray, rcov: np.ndarray, sysb: SystemBatch
+    ) -> np.ndarray | None:
+        """Asymptotic covariance of (a11, a12, a21, a22, b1, b2), or None."""
+        return None
+
+    def notes(self, rec: Recording, d: Design, sysb: SystemBatch) -> list[str]:
+        """Facts worth recording about this fit."""
+        return []
+
+    def warnings(self, rec: Recording, d: Design, sysb: SystemBatch) -> list[str]:
+        """Warnings about this fit."""
+        return []
+
+    def extra(
+        self, rec: Recording, d: Design, C: np.ndarray, c: np.ndarray, sysb: SystemBatch
+    ) -> dict[str, Any]:
+        """Estimator-specific results."""
+        return {}

@@ -1,0 +1,306 @@
+"""Batched closed-form linear algebra for 2x2 real matrices.
+
+Every function takes arrays of shape ``(..., 2, 2)`` (any number of leading batch
+axes) and works element-wise over the batch without a Python loop.  The formulas use
+the split ``A = s I + M`` with ``s = tr(A) / 2`` and the trace-free part ``M``, whose
+square is ``q I`` with ``q = ((a - d) / 2)^2 + b c`` (a quarter of the
+discriminant).  Any primary matrix function is then ``f(A) = f0 I + f1 M`` with
+
+    f0 = (f(s + r) + f(s - r)) / 2,   f1 = (f(s + r) - f(s - r)) / (2 r),  r = sqrt(q),
+
+evaluated in real arithmetic for both signs of ``q`` (for ``q < 0`` the pair is
+complex and ``r`` imaginary), with series where ``r`` is small so that repeated and
+nearly repeated eigenvalues lose no accuracy (Sylvester's formula; Higham,
+*Functions of Matrices*, 2008, ch. 1).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = [
+    "invariants",
+    "eigvals",
+    "eigvecs",
+    "expm",
+    "logm",
+    "has_real_log",
+    "inv",
+    "solve",
+    "sort_eigenvalues",
+]
+
+_SMALL = 1e-4  # below this |x| the series branches are used (error ~ x^4 / 45)
+
+
+def _parts(A: np.ndarray) -> tuple[np.ndarray, ...]:
+    A = np.asarray(A, dtype=float)
+    if A.shape[-2:] != (2, 2):
+        raise ValueError(f"expected arrays of shape (..., 2, 2), got {A.shape}")
+    return A[..., 0, 0], A[..., 0, 1], A[..., 1, 0], A[..., 1, 1]
+
+
+def invariants(A: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Trace, determinant and discriminant of 2x2 matrices.
+
+    Parameters
+    ----------
+    A : ndarray, shape (..., 2, 2)
+
+    Returns
+    -------
+    trace, det, disc : ndarray, shape (...)
+        ``disc = trace**2 - 4 det``, computed as ``(a - d)**2 + 4 b c`` which avoids
+        the cancellation of the textbook form when the eigenvalues are close.
+    """
+    a, b, c, d = _parts(A)
+    return a + d, a * d - b * c, (a - d) ** 2 + 4.0 * b * c
+
+
+def _split(A: np.ndarray):
+    a, b, c, d = _parts(A)
+    s = 0.5 * (a + d)
+    h = 0.5 * (a - d)
+    q = h * h + b * c
+    M = np.asarray(A, dtype=float) - s[..., None, None] * np.eye(2)
+    return s, q, M
+
+
+def _combine(f0: np.ndarray, f1: np.ndarray, M: np.ndarray) -> np.ndarray:
+    return f0[..., None, None] * np.eye(2) + f1[..., None, None] * M
+
+
+def sort_eigenvalues(lam: np.ndarray) -> np.ndarray:
+    """Sort eigenvalue pairs: larger real part first, then positive imaginary first.
+
+    Parameters
+    ----------
+    lam : complex ndarray, shape (..., 2)
+
+    Returns
+    -------
+    complex ndarray, shape (..., 2)
+    """
+    lam = np.asarray(lam, dtype=complex)
+    swap = (lam[..., 1].real > lam[..., 0].real) | (
+        (lam[..., 1].real == lam[..., 0].real) & (lam[..., 1].imag > lam[..., 0].imag)
+    )
+    out = lam.copy()
+    out[swap, 0] = lam[swap, 1]
+    out[swap, 1] = lam[swap, 0]
+    return out
+
+
+def eigvals(A: np.ndarray) -> np.ndarray:
+    """Eigenvalues of 2x2 real matrices, sorted.
+
+    Parameters
+    ----------
+    A : ndarray, shape (..., 2, 2)
+
+    Returns
+    -------
+    complex ndarray, shape (..., 2)
+        Larger real part first; for a complex pair the one with positive imaginary
+        part first.  The smaller-magnitude real root is computed from the
+        determinant to avoid cancellation.
+    """
+    a, b, c, d = _parts(A)
+    s = 0.5 * (a + d)
+    h = 0.5 * (a - d)
+    q = h * h + b * c
+    det = a * d - b * c
+    r = np.sqrt(np.abs(q))
+    real = q >= 0
+    # real pair: big = s + sign(s) r has no cancellation; small = det / big
+    big = s + np.copysign(r, s)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        small = np.where(big != 0, det / np.where(big != 0, big, 1.0), s - np.copysign(r, s))
+    hi = np.maximum(big, small)
+    lo = np.minimum(big, small)
+    lam = np.empty(np.shape(s) + (2,), dtype=complex)
+    lam[..., 0] = np.where(real, hi, s) + 1j * np.where(real, 0.0, r)
+    lam[..., 1] = np.where(real, lo, s) - 1j * np.where(real, 0.0, r)
+    return lam
+
+
+def eigvecs(A: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Eigenvalues and unit eigenvectors of 2x2 real matrices.
+
+    Parameters
+    ----------
+    A : ndarray, shape (..., 2, 2)
+
+    Returns
+    -------
+    lam : complex ndarray, shape (..., 2)
+        As :func:`eigvals`.
+    V : complex ndarray, shape (..., 2, 2)
+        ``V[..., :, k]`` is a unit eigenvector for ``lam[..., k]`` (real-valued for
+        real eigenvalues).  For a multiple of the identity the standard basis is
+        returned; for a defective matrix both columns are the one eigenvector.
+        Each vector's largest-magnitude component is made real and positive.
+    """
+    A = np.asarray(A, dtype=float)
+    a, b, c, d = _parts(A)
+    lam = eigvals(A)
+    V = np.empty(np.shape(a) + (2, 2), dtype=complex)
+    scale = np.maximum(np.abs(A).reshape(A.shape[:-2] + (4,)).max(axis=-1), 1e-300)
+    for k in range(2):
+        lk = lam[..., k]
+        # two candidates from the rows of (A - lam I); keep the larger one
+        v1 = np.stack([b + 0j, lk - a], axis=-1)
+        v2 = np.stack([lk - d, c + 0j], axis=-1)
+        n1 = np.linalg.norm(v1, axis=-1)
+        n2 = np.linalg.norm(v2, axis=-1)
+        v = np.where((n1 >= n2)[..., None], v1, v2)
+        n = np.maximum(n1, n2)
+        degenerate = n <= 1e-14 * scale
+        e = np.zeros_like(v)
+        e[..., k] = 1.0
+        v = np.where(degenerate[..., None], e, v / np.where(n > 0, n, 1.0)[..., None])
+        # fix the phase: largest component real positive
+        idx = np.argmax(np.abs(v), axis=-1)
+        pivot = np.take_along_axis(v, idx[..., None], axis=-1)
+        phase = pivot / np.abs(np.where(pivot == 0, 1.0, pivot))
+        phase = np.where(np.abs(pivot) == 0, 1.0, phase)
+        v = v / phase
+        V[..., :, k] = v
+    return lam, V
+
+
+def _sinhc(x: np.ndarray) -> np.ndarray:
+    """sinh(x) / x, accurate near 0."""
+    x = np.asarray(x, dtype=float)
+    small = np.abs(x) < _SMALL
+    xs = np.where(small, 1.0, x)
+    return np.where(small, 1.0 + x * x / 6.0, np.sinh(xs) / xs)
+
+
+def _sinc(x: np.ndarray) -> np.ndarray:
+    """sin(x) / x, accurate near 0."""
+    x = np.asarray(x, dtype=float)
+    small = np.abs(x) < _SMALL
+    xs = np.where(small, 1.0, x)
+    return np.where(small, 1.0 - x * x / 6.0, np.sin(xs) / xs)
+
+
+def expm(A: np.ndarray, t: np.ndarray | float = 1.0) -> np.ndarray:
+    """Matrix exponential ``expm(A t)`` of 2x2 real matrices in closed form.
+
+    Parameters
+    ----------
+    A : ndarray, shape (..., 2, 2)
+    t : float or ndarray broadcastable against ``A.shape[:-2]``
+        Time step(s); the result has the broadcast batch shape.
+
+    Returns
+    -------
+    ndarray, shape (..., 2, 2)
+    """
+    A = np.asarray(A, dtype=float)
+    t = np.asarray(t, dtype=float)
+    if t.ndim:
+        A = A * t[..., None, None]
+    elif t != 1.0:
+        A = A * float(t)
+    s, q, M = _split(A)
+    r = np.sqrt(np.abs(q))
+    pos = q >= 0
+    # real pair: for large r combine exponentials of the eigenvalues directly, which
+    # stays finite for stiff steps where exp(s) alone would underflow
+    large = pos & (r >= 1.0)
+    rl = np.where(large, r, 1.0)
+    with np.errstate(over="ignore", under="ignore", invalid="ignore"):
+        ep = np.exp(s + rl)
+        em = np.exp(s - rl)
+        f0_large = 0.5 * (ep + em)
+        f1_large = 0.5 * (ep - em) / rl
+        es = np.exp(s)
+        f0_real = es * np.cosh(np.where(large, 0.0, r))
+        f1_real = es * _sinhc(np.where(large, 0.0, r))
+        f0_cplx = es * np.cos(r)
+        f1_cplx = es * _sinc(r)
+    f0 = np.where(pos, np.where(large, f0_large, f0_real), f0_cplx)
+    f1 = np.where(pos, np.where(large, f1_large, f1_real), f1_cplx)
+    return _combine(f0, f1, M)
+
+
+def has_real_log(F: np.ndarray) -> np.ndarray:
+    """Whether each 2x2 real matrix has a real principal logarithm.
+
+    True unless an eigenvalue lies on the closed negative real axis (zero included)
+    (Higham, *Functions of Matrices*, 2008, thm 1.31).
+
+    Parameters
+    ----------
+    F : ndarray, shape (..., 2, 2)
+
+    Returns
+    -------
+    bool ndarray, shape (...)
+    """
+    s, q, _ = _split(F)
+    r = np.sqrt(np.abs(q))
+    return np.where(q >= 0, s - r > 0, True) & np.isfinite(s) & np.isfinite(q)
+
+
+def logm(F: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Principal matrix logarithm of 2x2 real matrices in closed form.
+
+    Parameters
+    ----------
+    F : ndarray, shape (..., 2, 2)
+
+    Returns
+    -------
+    L : ndarray, shape (..., 2, 2)
+        The real principal logarithm; NaN where it does not exist.
+    valid : bool ndarray, shape (...)
+        False where ``F`` has an eigenvalue on the closed negative real axis (then
+        no real principal logarithm exists; see :func:`has_real_log`).
+
+    Notes
+    -----
+    With ``F = s I + M`` and ``M^2 = q I``: for a real positive pair
+    (``q = r^2``, ``s > r``) ``log F = log(det F) / 2 I + atanh(r / s) / r M``;
+    for a complex pair ``s +- i w`` (``q = -w^2``)
+    ``log F = log(det F) / 2 I + atan2(w, s) / w M``; for a repeated eigenvalue
+    ``mu`` this tends to ``log(mu) I + M / mu``.
+    """
+    F = np.asarray(F, dtype=float)
+    s, q, M = _split(F)
+    a, b, c, d = _parts(F)
+    det = a * d - b * c
+    valid = has_real_log(F)
+    r = np.sqrt(np.abs(q))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ss = np.where(valid & (s != 0), s, 1.0)
+        x = r / np.abs(ss)
+        small = x < _SMALL
+        xs = np.where(small, 0.5, x)
+        # real pair: atanh(x)/x / s ; complex pair: atan2(r, s)/r
+        g_real = np.where(small, 1.0 + x * x / 3.0, np.arctanh(np.minimum(xs, 0.999999999999)) / xs)
+        f1_real = g_real / ss
+        g_cplx_small = (1.0 - x * x / 3.0) / ss  # valid for s > 0, tiny r
+        rr = np.where(r > 0, r, 1.0)
+        f1_cplx = np.where(small & (s > 0), g_cplx_small, np.arctan2(r, s) / rr)
+        f1 = np.where(q >= 0, f1_real, f1_cplx)
+        f0 = 0.5 * np.log(np.where(valid, det, 1.0))
+    L = _combine(f0, f1, M)
+    L = np.where(valid[..., None, None], L, np.nan)
+    return L, valid
+
+
+def inv(A: np.ndarray) -> np.ndarray:
+    """Inverse of 2x2 matrices by the adjugate (inf/nan where singular)."""
+    a, b, c, d = _parts(A)
+    det = a * d - b * c
+    adj = np.stack([np.stack([d, -b], -1), np.stack([-c, a], -1)], -2)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return adj / det[..., None, None]
+
+
+def solve(A: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Solve ``A x = y`` for 2x2 ``A`` (shape (..., 2, 2)) and ``y`` (shape (..., 2))."""
+    return np.einsum("...ij,...j->...i", inv(A), np.asarray(y, dtype=float))
