@@ -16,11 +16,14 @@ __version__ = "0.1.0"
 
 __all__ = ["read", "fit", "simulate", "Recording", "Fit", "__version__"]
 
+# The function shares its name with its module: import it eagerly so that the
+# attribute is the function whatever is imported later (the module needs only numpy).
+from fitdyn.simulate import simulate  # noqa: E402
+
 _LAZY = {
     "read": ("fitdyn.importer", "read"),
     "fit": ("fitdyn.analysis", "fit"),
     "Fit": ("fitdyn.analysis", "Fit"),
-    "simulate": ("fitdyn.simulate", "simulate"),
     "Recording": ("fitdyn.recording", "Recording"),
 }
 

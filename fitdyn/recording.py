@@ -10,7 +10,8 @@ kept, dropped (and why), merged into another row, or kept but flagged.
 from __future__ import annotations
 
 from collections import Counter
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
+from functools import cached_property
 from typing import Any
 
 import numpy as np
@@ -69,6 +70,13 @@ class CleaningLog:
     notes: tuple[str, ...] = ()
 
     # -- counts ---------------------------------------------------------------
+    @cached_property
+    def _tally(self) -> tuple[Counter, Counter, Counter]:
+        status = Counter(f.status for f in self.fates)
+        dropped = Counter(f.reason for f in self.fates if f.status == DROPPED)
+        flags = Counter(fl for f in self.fates for fl in f.flags)
+        return status, dropped, flags
+
     @property
     def input_rows(self) -> int:
         """Number of input data rows."""
@@ -77,25 +85,29 @@ class CleaningLog:
     @property
     def kept_rows(self) -> int:
         """Rows that became samples of the recording."""
-        return sum(f.status == KEPT for f in self.fates)
+        return self._tally[0][KEPT]
 
     @property
     def merged_rows(self) -> int:
         """Rows averaged into another row with the same timestamp."""
-        return sum(f.status == MERGED for f in self.fates)
+        return self._tally[0][MERGED]
 
     @property
     def dropped_rows(self) -> int:
         """Rows dropped for any reason."""
-        return sum(f.status == DROPPED for f in self.fates)
+        return self._tally[0][DROPPED]
 
     def dropped(self) -> dict[str, int]:
         """Counts of dropped rows by reason."""
-        return dict(Counter(f.reason for f in self.fates if f.status == DROPPED))
+        return dict(self._tally[1])
 
     def flagged(self) -> dict[str, int]:
         """Counts of flags on kept rows (e.g. ``{"outlier": 3}``)."""
-        return dict(Counter(fl for f in self.fates for fl in f.flags))
+        return dict(self._tally[2])
+
+    def outliers(self) -> int:
+        """Rows found to be outliers: flagged and kept, or dropped as outliers."""
+        return self._tally[2]["outlier"] + self._tally[1]["outlier"]
 
     def rows_with(self, status: str, reason: str | None = None) -> list[int]:
         """Row numbers with a given status (and reason, when given)."""
@@ -119,7 +131,7 @@ class CleaningLog:
             "dropped_rows": self.dropped_rows,
             "dropped": self.dropped(),
             "merged_rows": self.merged_rows,
-            "outliers": self.flagged().get("outlier", 0),
+            "outliers": self.outliers(),
             "flags": self.flagged(),
             "notes": list(self.notes),
         }
@@ -170,7 +182,10 @@ def describe_sampling(
     dict
         ``uniform`` (bool), ``median_step``, ``min_step``, ``max_step`` and
         ``jitter`` (largest relative deviation of a within-trajectory step from the
-        median step), ``steps`` (number of steps).
+        median step), ``steps`` (number of steps), ``on_grid`` (every step is a
+        whole multiple of the median step within the tolerance: a uniform grid,
+        possibly with missing samples) and ``missing_on_grid`` (how many grid points
+        those longer steps skip).
     """
     times = np.asarray(times, dtype=float)
     trajectory = np.asarray(trajectory)
@@ -184,9 +199,18 @@ def describe_sampling(
             "max_step": float("nan"),
             "jitter": float("nan"),
             "steps": 0,
+            "on_grid": False,
+            "missing_on_grid": 0,
         }
     med = float(np.median(steps))
     jitter = float(np.max(np.abs(steps - med)) / med) if med > 0 else float("inf")
+    holes = 0
+    on_grid = False
+    if med > 0:
+        ratio = steps / med
+        whole = np.maximum(np.round(ratio), 1.0)
+        on_grid = bool(np.all(np.abs(ratio - whole) <= jitter_tolerance * whole))
+        holes = int(np.sum(whole - 1)) if on_grid else 0
     return {
         "uniform": bool(jitter <= jitter_tolerance),
         "median_step": med,
@@ -194,6 +218,8 @@ def describe_sampling(
         "max_step": float(steps.max()),
         "jitter": jitter,
         "steps": int(steps.size),
+        "on_grid": on_grid,
+        "missing_on_grid": holes,
     }
 
 
@@ -236,6 +262,11 @@ class Recording:
         File name or a description of the source.
     time_origin : str or None
         The first timestamp when the input had absolute timestamps.
+    jitter_tolerance : float
+        Largest relative step deviation for the sampling to count as uniform.
+    source_columns : dict
+        The input columns used: ``time`` (header), ``channels`` (two headers) and
+        ``trajectory`` (header or ``None``).
     """
 
     times: np.ndarray
@@ -252,6 +283,7 @@ class Recording:
     source: str | None = None
     time_origin: str | None = None
     jitter_tolerance: float = field(default=0.01)
+    source_columns: dict[str, Any] = field(default_factory=dict, compare=False)
 
     # -- basic facts ------------------------------------------------------------
     @property
@@ -301,21 +333,14 @@ class Recording:
     def select(self, mask: np.ndarray) -> Recording:
         """A recording with only the samples where ``mask`` is true (same log)."""
         mask = np.asarray(mask, dtype=bool)
-        return Recording(
+        return replace(
+            self,
             times=self.times[mask],
             values=self.values[mask],
             trajectory=self.trajectory[mask],
             segment=self.segment[mask],
             outlier=self.outlier[mask],
             source_rows=self.source_rows[mask],
-            channels=self.channels,
-            units=self.units,
-            time_unit=self.time_unit,
-            trajectory_names=self.trajectory_names,
-            log=self.log,
-            source=self.source,
-            time_origin=self.time_origin,
-            jitter_tolerance=self.jitter_tolerance,
         )
 
     def with_values(self, values: np.ndarray) -> Recording:
@@ -323,22 +348,12 @@ class Recording:
         values = np.asarray(values, dtype=float)
         if values.shape != self.values.shape:
             raise ValueError(f"values must have shape {self.values.shape}, got {values.shape}")
-        return Recording(
-            times=self.times,
-            values=values,
-            trajectory=self.trajectory,
-            segment=self.segment,
-            outlier=self.outlier,
-            source_rows=self.source_rows,
-            channels=self.channels,
-            units=self.units,
-            time_unit=self.time_unit,
-            trajectory_names=self.trajectory_names,
-            log=self.log,
-            source=self.source,
-            time_origin=self.time_origin,
-            jitter_tolerance=self.jitter_tolerance,
-        )
+        return replace(self, values=values)
+
+    def samples_per_trajectory(self) -> dict[str, int]:
+        """Number of samples of each trajectory, by name."""
+        counts = np.bincount(self.trajectory, minlength=self.n_trajectories)
+        return {name: int(c) for name, c in zip(self.trajectory_names, counts, strict=True)}
 
     # -- output -----------------------------------------------------------------
     def to_frame(self):
@@ -368,18 +383,23 @@ class Recording:
             "source": self.source,
             "input_rows": log["input_rows"],
             "kept_rows": log["kept_rows"],
+            "dropped_rows": log["dropped_rows"],
             "dropped": log["dropped"],
             "merged_rows": log["merged_rows"],
             "outliers": log["outliers"],
+            "flagged": log["flags"],
             "trajectories": self.n_trajectories,
             "trajectory_names": list(self.trajectory_names),
+            "samples_per_trajectory": self.samples_per_trajectory(),
             "samples": self.n_samples,
+            "columns": dict(self.source_columns),
             "channels": list(self.channels),
             "units": list(self.units),
             "time_unit": self.time_unit,
             "time_origin": self.time_origin,
             "time_span": self.time_span(),
             "gaps": self.n_gaps,
+            "segments": len(self.segment_bounds()),
             "sampling": self.sampling(),
             "notes": log["notes"],
         }
@@ -389,18 +409,35 @@ class Recording:
         d = self.describe()
         s = d["sampling"]
         unit = f" {self.time_unit}" if self.time_unit else ""
-        kind = "uniform" if s["uniform"] else "irregular"
         chans = ", ".join(
             f"{c} [{u}]" if u else c for c, u in zip(self.channels, self.units, strict=True)
         )
+        if s["steps"] == 0:
+            sampling = "too few samples to tell"
+        else:
+            kind = "uniform" if s["uniform"] else "irregular"
+            sampling = (
+                f"{kind}, median step {s['median_step']:.6g}{unit}, "
+                f"jitter {100 * s['jitter']:.3g} % of the median step"
+            )
+            if not s["uniform"] and s["on_grid"]:
+                sampling += (
+                    f" (a uniform grid with {s['missing_on_grid']} missing sample(s) "
+                    "inside segments)"
+                )
+        per = d["samples_per_trajectory"]
+        if 1 < len(per) <= 8:
+            traj = f"{d['trajectories']} ({', '.join(f'{k}: {v}' for k, v in per.items())})"
+        else:
+            traj = f"{d['trajectories']}"
         lines = [
             f"source          {self.source}",
             f"channels        {chans}",
-            f"trajectories    {d['trajectories']}",
+            f"time unit       {self.time_unit or 'not given'}",
+            f"trajectories    {traj}",
             f"samples         {d['samples']}",
             f"time span       {d['time_span']:.6g}{unit}",
-            f"sampling        {kind}, median step {s['median_step']:.6g}{unit}, "
-            f"jitter {100 * s['jitter']:.3g} %",
+            f"sampling        {sampling}",
             f"gaps            {d['gaps']}",
         ]
         if self.time_origin:
