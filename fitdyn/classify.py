@@ -22,6 +22,19 @@ or noise-free data still do, the point-estimate label uses a relative tolerance
 
 The default ``rtol = 1e-6``.  ``rtol = 0`` gives the generic classes only (up to
 exact ties), which is what bootstrap replicates use.
+
+Consequences worth knowing.  Apart from star versus degenerate node, the tests
+depend on the eigenvalues only, so the label does not change when either channel is
+rescaled (a change of units, ``D A D^-1`` with ``D`` diagonal), when time is
+rescaled (``c A``, ``c > 0``) or under any other change of coordinates; a test on
+the entries (a distance to the boundary in the Frobenius norm, say) would lose
+this.  The price is the square root above: a diagonalisable matrix whose
+eigenvalues are closer than ``sqrt(rtol) * rho`` (0.1 % with the default) counts as
+a star or degenerate node, though a perturbation of only about that size separates
+it from one.  And a perturbed nilpotent matrix (``[[0, 1], [-e, 0]]``) has
+eigenvalues ``~ sqrt(e)`` that are not small compared with ``rho`` itself, so it
+is a center or saddle rather than non-isolated equilibria; only the exactly
+singular case lands there.
 """
 
 from __future__ import annotations
@@ -90,9 +103,22 @@ def classify_codes(A: np.ndarray, rtol: float = DEFAULT_RTOL) -> tuple[np.ndarra
         Index into :data:`LABELS`.
     stability : int ndarray, shape (...)
         Index into :data:`STABILITY`.
+
+    Raises
+    ------
+    ValueError
+        If any matrix has a NaN or infinite entry (it has no class; labelling it
+        would hide a failed estimate).
     """
     A = np.asarray(A, dtype=float)
     tau, det, disc = linalg2.invariants(A)
+    finite = np.isfinite(A).all(axis=(-2, -1))
+    if not np.all(finite):
+        bad = int(np.size(finite) - np.count_nonzero(finite))
+        raise ValueError(
+            f"cannot classify {bad} of {np.size(finite)} matrices: they contain NaN or "
+            "infinite entries; remove them, and count them, before classifying"
+        )
     lam = linalg2.eigvals(A)
     rho = np.max(np.abs(lam), axis=-1)
     fro = np.sqrt(np.sum(A * A, axis=(-2, -1)))

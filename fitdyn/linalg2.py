@@ -28,9 +28,12 @@ __all__ = [
     "inv",
     "solve",
     "sort_eigenvalues",
+    "phi1",
+    "expm_integral",
 ]
 
 _SMALL = 1e-4  # below this |x| the series branches are used (error ~ x^4 / 45)
+_CUT_TOL = 8.0 * np.finfo(float).eps  # relative distance counted as on the branch cut
 
 
 def _parts(A: np.ndarray) -> tuple[np.ndarray, ...]:
@@ -223,14 +226,32 @@ def expm(A: np.ndarray, t: np.ndarray | float = 1.0) -> np.ndarray:
         f1_cplx = es * _sinc(r)
     f0 = np.where(pos, np.where(large, f0_large, f0_real), f0_cplx)
     f1 = np.where(pos, np.where(large, f1_large, f1_real), f1_cplx)
-    return _combine(f0, f1, M)
+    out = _combine(f0, f1, M)
+    # well-separated real pair: the diagonal f0 +- f1 h equals
+    # (e^l1 (r +- h) + e^l2 (r -+ h)) / (2 r); forming r - |h| as b c / (r + |h|) keeps
+    # it free of cancellation, so e.g. expm(diag(-1, -50)) is exact entry by entry
+    h = M[..., 0, 0]
+    with np.errstate(over="ignore", under="ignore", invalid="ignore"):
+        u = rl + np.abs(h)
+        v = M[..., 0, 1] * M[..., 1, 0] / u
+        p = np.where(h >= 0, u, v)  # r + h
+        m = np.where(h >= 0, v, u)  # r - h
+        d11 = (ep * p + em * m) / (2.0 * rl)
+        d22 = (ep * m + em * p) / (2.0 * rl)
+    out[..., 0, 0] = np.where(large, d11, out[..., 0, 0])
+    out[..., 1, 1] = np.where(large, d22, out[..., 1, 1])
+    return out
 
 
 def has_real_log(F: np.ndarray) -> np.ndarray:
     """Whether each 2x2 real matrix has a real principal logarithm.
 
     True unless an eigenvalue lies on the closed negative real axis (zero included)
-    (Higham, *Functions of Matrices*, 2008, thm 1.31).
+    (Higham, *Functions of Matrices*, 2008, thm 1.31).  A complex pair with negative
+    real part counts as on that axis when a change of the entries of relative size
+    ``_CUT_TOL`` (a few rounding units) would make it real: there the principal
+    logarithm is discontinuous, so its value would be decided by rounding (e.g. a
+    rotation by ``np.pi``, whose computed entries leave an imaginary part 1e-16).
 
     Parameters
     ----------
@@ -240,9 +261,20 @@ def has_real_log(F: np.ndarray) -> np.ndarray:
     -------
     bool ndarray, shape (...)
     """
+    a, b, c, d = _parts(F)
     s, q, _ = _split(F)
-    r = np.sqrt(np.abs(q))
-    return np.where(q >= 0, s - r > 0, True) & np.isfinite(s) & np.isfinite(q)
+    h = 0.5 * (a - d)
+    with np.errstate(invalid="ignore", over="ignore"):
+        # real pair: both eigenvalues positive
+        real_ok = (s > 0) & (a * d - b * c > 0)
+        # complex pair s +- i r within rounding of the negative real axis, where the
+        # principal logarithm jumps by 2 pi i: |q| / (|grad q| + r) estimates the
+        # smallest change of the entries that makes the pair real
+        r = np.sqrt(np.abs(q))
+        gap = np.abs(q) / (np.sqrt(2.0 * h * h + b * b + c * c) + r)
+        fro = np.sqrt(a * a + b * b + c * c + d * d)
+        on_cut = (s < 0) & (gap <= _CUT_TOL * fro)
+    return np.where(q >= 0, real_ok, ~on_cut) & np.isfinite(s) & np.isfinite(q)
 
 
 def logm(F: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -274,20 +306,36 @@ def logm(F: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     det = a * d - b * c
     valid = has_real_log(F)
     r = np.sqrt(np.abs(q))
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         ss = np.where(valid & (s != 0), s, 1.0)
         x = r / np.abs(ss)
         small = x < _SMALL
         xs = np.where(small, 0.5, x)
-        # real pair: atanh(x)/x / s ; complex pair: atan2(r, s)/r
-        g_real = np.where(small, 1.0 + x * x / 3.0, np.arctanh(np.minimum(xs, 0.999999999999)) / xs)
-        f1_real = g_real / ss
+        # real pair: atanh(x)/x / s for x <= 1/2; beyond, (log l1 - log l2) / (2 r)
+        # with l2 = det / l1 (no cancellation, any eigenvalue ratio); complex pair:
+        # atan2(r, s)/r
+        g_real = np.where(small, 1.0 + x * x / 3.0, np.arctanh(np.minimum(xs, 0.5)) / xs)
+        far = (q >= 0) & valid & (x > 0.5)
+        l1 = np.where(far, ss + r, 1.0)
+        log1 = np.log(l1)
+        log2 = np.log(np.where(far, det, 1.0) / l1)
+        r_far = np.where(far, r, 1.0)
+        f1_real = np.where(far, (log1 - log2) / (2.0 * r_far), g_real / ss)
         g_cplx_small = (1.0 - x * x / 3.0) / ss  # valid for s > 0, tiny r
         rr = np.where(r > 0, r, 1.0)
         f1_cplx = np.where(small & (s > 0), g_cplx_small, np.arctan2(r, s) / rr)
         f1 = np.where(q >= 0, f1_real, f1_cplx)
         f0 = 0.5 * np.log(np.where(valid, det, 1.0))
     L = _combine(f0, f1, M)
+    # far-apart real pair: diagonal without cancellation, as in expm
+    h = M[..., 0, 0]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        u = r_far + np.abs(h)
+        v = M[..., 0, 1] * M[..., 1, 0] / u
+        p = np.where(h >= 0, u, v)  # r + h
+        m = np.where(h >= 0, v, u)  # r - h
+        L[..., 0, 0] = np.where(far, (log1 * p + log2 * m) / (2.0 * r_far), L[..., 0, 0])
+        L[..., 1, 1] = np.where(far, (log1 * m + log2 * p) / (2.0 * r_far), L[..., 1, 1])
     L = np.where(valid[..., None, None], L, np.nan)
     return L, valid
 
@@ -304,3 +352,95 @@ def inv(A: np.ndarray) -> np.ndarray:
 def solve(A: np.ndarray, y: np.ndarray) -> np.ndarray:
     """Solve ``A x = y`` for 2x2 ``A`` (shape (..., 2, 2)) and ``y`` (shape (..., 2))."""
     return np.einsum("...ij,...j->...i", inv(A), np.asarray(y, dtype=float))
+
+
+_PHI_TAYLOR = 14  # Taylor degree of phi1 on the scaled pair (error < 0.5^15 / 16!)
+
+
+def phi1(A: np.ndarray, t: np.ndarray | float = 1.0) -> np.ndarray:
+    """The matrix function ``phi1(A t) = sum_k (A t)^k / (k + 1)!`` of 2x2 real matrices.
+
+    ``phi1(X) = X^{-1} (expm(X) - I)`` when ``X`` is invertible, and it stays finite
+    and accurate when ``X`` is singular or nearly so; ``t * phi1(A t)`` is the
+    integral of ``expm(A s)`` over ``0 <= s <= t`` (see :func:`expm_integral`).
+
+    Parameters
+    ----------
+    A : ndarray, shape (..., 2, 2)
+    t : float or ndarray broadcastable against ``A.shape[:-2]``
+
+    Returns
+    -------
+    ndarray, shape (..., 2, 2)
+
+    Notes
+    -----
+    Like every function of this module, ``phi1(X) = f0 I + f1 M`` with ``X = s I + M``
+    and ``M^2 = q I``; ``f0`` and ``f1`` depend on ``s`` and ``q`` only.  They are
+    computed in the two-dimensional algebra spanned by ``I`` and ``M``: a Taylor
+    polynomial of ``X / 2^k`` (``k`` chosen per matrix so that its eigenvalues are at
+    most 0.5 in modulus), then ``k`` doublings
+    ``phi1(2 Y) = (I + expm(Y)) phi1(Y) / 2`` with ``expm(Y) = I + Y phi1(Y)``
+    (scaling and squaring; Higham, *Functions of Matrices*, 2008, ch. 10).  No
+    cancellation occurs for repeated, nearly repeated, zero or complex eigenvalues.
+    """
+    A = np.asarray(A, dtype=float)
+    t = np.asarray(t, dtype=float)
+    if t.ndim:
+        A = A * t[..., None, None]
+    elif t != 1.0:
+        A = A * float(t)
+    s, q, M = _split(A)
+    with np.errstate(over="ignore", invalid="ignore"):
+        nu = np.abs(s) + np.sqrt(np.abs(q))
+        k = np.where(
+            np.isfinite(nu) & (nu > 0.5), np.ceil(np.log2(np.where(nu > 0.5, nu, 1.0) / 0.5)), 0
+        ).astype(int)
+        scale = np.ldexp(1.0, -k)
+        ss = s * scale  # scaled pair: X' = ss I + M', M' = scale M, M'^2 = qq I
+        qq = q * scale * scale
+        # Horner: P = sum_j X'^j / (j + 1)!, pairs (a, c) stand for a I + c M'
+        fact = [1.0]
+        for j in range(1, _PHI_TAYLOR + 2):
+            fact.append(fact[-1] * j)
+        a = np.full(np.shape(s), 1.0 / fact[_PHI_TAYLOR + 1])
+        c = np.zeros(np.shape(s))
+        for j in range(_PHI_TAYLOR - 1, -1, -1):
+            a, c = a * ss + qq * c + 1.0 / fact[j + 1], a + c * ss
+        # doublings; each one also doubles M' (so c is halved when re-expressed)
+        for level in range(int(k.max()) if k.size else 0):
+            todo = level < k
+            # E = I + X' P
+            ea = 1.0 + ss * a + qq * c
+            ec = a + ss * c
+            # P2 = (I + E) P / 2 in the basis of M', then M'' = 2 M'
+            na = 0.5 * ((1.0 + ea) * a + qq * ec * c)
+            nc = 0.5 * ((1.0 + ea) * c + ec * a)
+            a = np.where(todo, na, a)
+            c = np.where(todo, 0.5 * nc, c)
+            ss = np.where(todo, 2.0 * ss, ss)
+            qq = np.where(todo, 4.0 * qq, qq)
+    # back in the basis of M: a I + c M' with M' = M (all doublings done)
+    return _combine(a, c, M)
+
+
+def expm_integral(A: np.ndarray, t: np.ndarray | float = 1.0) -> np.ndarray:
+    """The integral of ``expm(A s)`` over ``0 <= s <= t``, i.e. ``t * phi1(A t)``.
+
+    This maps the constant ``b`` of ``dx/dt = A x + b`` to the constant
+    ``g = expm_integral(A, h) b`` of the exact one-step form
+    ``x(t + h) = expm(A h) x(t) + g``; it is invertible whenever ``A h`` has no
+    eigenvalue ``2 pi i k`` with ``k != 0`` (always on the principal branch of the
+    logarithm), singular ``A`` included.
+
+    Parameters
+    ----------
+    A : ndarray, shape (..., 2, 2)
+    t : float or ndarray broadcastable against ``A.shape[:-2]``
+
+    Returns
+    -------
+    ndarray, shape (..., 2, 2)
+    """
+    t_arr = np.asarray(t, dtype=float)
+    return phi1(A, t_arr) * (t_arr[..., None, None] if t_arr.ndim else float(t_arr))

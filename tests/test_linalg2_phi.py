@@ -1,0 +1,67 @@
+"""Tests of the batched phi1 / integral of expm in fitdyn.linalg2.
+
+Reference: scipy.linalg.expm of Van Loan's block matrix [[A, I], [0, 0]] t, whose
+upper-right block is the integral of expm(A s) over [0, t] (Van Loan, "Computing
+integrals involving the matrix exponential", IEEE Trans. Automatic Control 23, 1978).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.linalg
+
+from fitdyn import linalg2
+
+
+def _reference(A: np.ndarray, t: float) -> np.ndarray:
+    # scipy.linalg.expm of the Van Loan block matrix
+    M = np.zeros((4, 4))
+    M[:2, :2] = A
+    M[:2, 2:] = np.eye(2)
+    return scipy.linalg.expm(M * t)[:2, 2:]
+
+
+EDGE = [
+    np.zeros((2, 2)),
+    np.array([[0.0, 1.0], [0.0, 0.0]]),  # nilpotent
+    np.array([[-1.0, 1e3], [0.0, -1.0]]),  # defective, badly scaled
+    np.array([[-1.0, 1.0], [1e-12, -1.0]]),  # nearly defective
+    np.array([[0.0, 3.0], [-3.0, 0.0]]),  # pure rotation
+    np.array([[-50.0, 0.0], [0.0, 1e-9]]),  # stiff and nearly singular
+    np.array([[2.0, 1.0], [0.0, 2.0]]),  # repeated, unstable
+    np.array([[-200.0, 3.0], [-3.0, -200.0]]),  # stiff spiral
+    np.array([[-0.35, 0.30], [0.15, -0.20]]),  # node
+    np.array([[0.5, 0.5], [0.5, 0.5]]),  # singular (zero eigenvalue)
+]
+
+
+@pytest.mark.parametrize("A", EDGE)
+@pytest.mark.parametrize("t", [0.1, 1.0, 2.5])
+def test_expm_integral_edge_cases(A, t):
+    ref = _reference(A, t)
+    got = linalg2.expm_integral(A, t)
+    np.testing.assert_allclose(got, ref, rtol=1e-10, atol=1e-12 * max(1.0, np.abs(ref).max()))
+
+
+def test_expm_integral_random_batch():
+    rng = np.random.default_rng(7)
+    A = np.concatenate([rng.normal(size=(40, 2, 2)) * s for s in (1e-8, 1e-3, 1.0, 5.0, 30.0)])
+    got = linalg2.expm_integral(A, 0.7)
+    ref = np.stack([_reference(a, 0.7) for a in A])
+    scale = np.abs(ref).max(axis=(1, 2), keepdims=True)
+    assert np.all(np.abs(got - ref) <= 1e-10 * scale)
+
+
+def test_phi1_relations():
+    rng = np.random.default_rng(3)
+    A = rng.normal(size=(30, 2, 2))
+    t = rng.uniform(0.1, 2.0, size=30)
+    P = linalg2.phi1(A, t)
+    # phi1(X) X = expm(X) - I (definition), with X = A t
+    X = A * t[:, None, None]
+    np.testing.assert_allclose(P @ X, linalg2.expm(A, t) - np.eye(2), atol=1e-12)
+    # t phi1(A t) = integral of expm(A s) over [0, t]
+    np.testing.assert_allclose(linalg2.expm_integral(A, t), P * t[:, None, None], rtol=1e-14)
+    # phi1(0) = I
+    np.testing.assert_array_equal(linalg2.phi1(np.zeros((2, 2))), np.eye(2))
