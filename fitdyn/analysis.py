@@ -12,6 +12,7 @@ import html
 import json
 import os
 from dataclasses import dataclass, field
+from functools import cached_property
 from typing import Any
 
 import numpy as np
@@ -147,12 +148,8 @@ class Fit:
         return None if self.uncertainty is None else float(self.uncertainty.p_stable)
 
     # -- fitted curves ------------------------------------------------------------
-    def initial_states(self) -> np.ndarray:
-        """Initial state of each trajectory under the fitted model, shape (R, 2).
-
-        The trajectory estimator fits them; otherwise they are the least-squares
-        initial states given the fitted A and b.
-        """
+    @cached_property
+    def _initial_states(self) -> np.ndarray:
         known = self.estimate.extra.get("initial_states")
         if known is not None:
             return np.asarray(known, dtype=float)
@@ -168,25 +165,21 @@ class Fit:
             out[k] = np.linalg.lstsq(lhs, rhs, rcond=None)[0]
         return out
 
+    def initial_states(self) -> np.ndarray:
+        """Initial state of each trajectory under the fitted model, shape (R, 2).
+
+        The trajectory estimator fits them; otherwise they are the least-squares
+        initial states given the fitted A and b.
+        """
+        return self._initial_states.copy()
+
     def _propagators(self, tau: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """``E(tau) = expm(A tau)`` and the offset response ``int_0^tau E(s) ds b``."""
-        A, b = self.matrix, self.offset
-        aug = np.zeros((3, 3))
-        aug[:2, :2] = A
-        aug[:2, 2] = b
-        from scipy.linalg import expm
-
-        E = np.empty((tau.size, 2, 2))
-        p = np.empty((tau.size, 2))
-        if self.equilibrium is not None:
-            E[:] = linalg2.expm(np.broadcast_to(A, (tau.size, 2, 2)), tau)
-            xs = self.equilibrium
-            p[:] = xs - np.einsum("nij,j->ni", E, xs)
-        else:  # singular A: use the augmented system z = (x, 1)
-            for i, t in enumerate(tau):
-                M = expm(aug * t)
-                E[i] = M[:2, :2]
-                p[i] = M[:2, 2]
+        tau = np.asarray(tau, dtype=float)
+        A = np.broadcast_to(self.matrix, (tau.size, 2, 2))
+        E = linalg2.expm(A, tau)
+        # int_0^tau expm(A s) ds = tau phi1(A tau): finite for singular A too
+        p = np.einsum("nij,j->ni", linalg2.expm_integral(A, tau), self.offset)
         return E, p
 
     def fitted(self, times: np.ndarray | None = None, trajectory: int = 0) -> np.ndarray:
@@ -208,7 +201,7 @@ class Fit:
         t0 = rec.times[m][0]
         t = rec.times[m] if times is None else np.asarray(times, dtype=float)
         E, p = self._propagators(t - t0)
-        x0 = self.initial_states()[trajectory]
+        x0 = self._initial_states[trajectory]
         return np.einsum("nij,j->ni", E, x0) + p
 
     def residuals(self) -> np.ndarray:
@@ -519,6 +512,16 @@ def fit(
     else:
         eq = np.asarray(equilibrium, dtype=float).reshape(2)
     est, estimator = estimate(rec, method, eq, **(settings or {}))
+    if not (np.all(np.isfinite(est.matrix)) and np.all(np.isfinite(est.offset))):
+        from fitdyn.errors import EstimationError
+
+        raise EstimationError(
+            f"{rec.source}: the data do not determine the matrix with the "
+            f"'{est.method}' method: the regressors are (nearly) collinear, as when "
+            "every trajectory runs along one straight line (e.g. starts on an "
+            "eigenvector) or the record is too short; record trajectories from "
+            "several directions, or give the equilibrium with --equilibrium"
+        )
     lam, vec = linalg2.eigvecs(est.matrix[None])
     label, stability = classify.classify(est.matrix, rtol)
     warnings = list(est.warnings)

@@ -104,3 +104,15 @@ def test_bad_equilibrium_word_is_a_clear_error():
 
     with pytest.raises(FitdynError, match="equilibrium"):
         fitdyn.fit(rec, equilibrium="guess")
+
+
+def test_data_along_one_eigenvector_give_a_clear_error():
+    # a saddle started on its stable eigenvector: the samples lie on one line, so
+    # only one direction of A is seen (common practice, no source)
+    from fitdyn.errors import EstimationError
+
+    A = np.array([[1.0, 1.0], [4.0, -2.0]])  # eigenvalues 2 and -3
+    v = np.array([1.0, -4.0]) / np.sqrt(17.0)  # eigenvector of -3
+    rec = _noise_free(A, [0.0, 0.0], 2 * v, np.linspace(0, 2, 81))
+    with pytest.raises(EstimationError, match="collinear"):
+        fitdyn.fit(rec, method="integral")
