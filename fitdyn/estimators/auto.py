@@ -1,0 +1,222 @@
+"""Choose an estimator from the data, fit with it, and say why.
+
+The policy (chosen with ``benchmarks/accuracy.py``; see its table):
+
+1. Fit the integral form (fast, no derivatives, any sampling).  The lag-1
+   autocorrelation of its residuals within segments separates the two noise
+   types: measurement noise leaves them nearly white, process noise makes them a
+   random walk (each row integrates all earlier disturbances).
+2. Unless that autocorrelation already shows process noise beyond doubt, or the
+   record is too long for a nonlinear fit, refine with the output-error
+   ``trajectory`` fit, the maximum-likelihood estimate under measurement noise.
+   Keep it when its own residuals are close to white: the deterministic model then
+   accounts for everything but independent measurement errors.
+3. Otherwise process noise matters.  On uniform steps use the one-step
+   ``discrete`` fit (exact for the sampled process) -- unless its one-step
+   residuals are negatively autocorrelated, the signature of measurement noise on
+   top of the process noise, which biases one-step regressions; then, and on
+   irregular steps or when the discrete fit refuses (no real logarithm), use the
+   ``derivative`` regression with smoothed states, which averages the measurement
+   noise and has no discretisation of its own to get wrong.
+4. If that fails too (too few samples per segment), keep the integral form.
+
+Every decision and the numbers behind it go into the Estimate's notes; its settings
+carry ``chosen_by = "auto"``.  The choice is deterministic.
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from typing import Any
+
+import numpy as np
+
+from fitdyn.errors import FitdynError, NoRealLogarithmError, SamplingError
+from fitdyn.estimators.base import Estimate, Estimator
+from fitdyn.recording import Recording
+
+__all__ = ["choose_and_fit", "residual_lag1", "AUTO_SETTINGS"]
+
+#: The policy's own settings and their defaults.
+AUTO_SETTINGS: dict[str, Any] = {
+    # integral residual lag-1 autocorrelation above which process noise is certain
+    "process_noise_lag1": 0.95,
+    # output-error residual lag-1 autocorrelation up to which the trajectory fit is kept
+    "white_lag1": 0.5,
+    # samples above which the nonlinear trajectory fit is skipped
+    "max_trajectory_samples": 20000,
+}
+
+
+def residual_lag1(residuals: np.ndarray, segment: np.ndarray) -> float:
+    """Lag-1 autocorrelation of residuals within segments, averaged over channels.
+
+    Parameters
+    ----------
+    residuals : ndarray, shape (m, 2)
+    segment : int ndarray, shape (m,)
+        Segment of each residual row; pairs never cross segments.
+
+    Returns
+    -------
+    float
+        NaN when fewer than three within-segment pairs exist.
+    """
+    r = np.asarray(residuals, dtype=float)
+    seg = np.asarray(segment)
+    same = seg[1:] == seg[:-1]
+    if int(same.sum()) < 3:
+        return float("nan")
+    r = r - r.mean(axis=0)
+    num = np.sum(r[1:][same] * r[:-1][same], axis=0)
+    den = np.sum(r * r, axis=0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rho = np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
+    return float(np.nanmean(rho)) if np.any(np.isfinite(rho)) else float("nan")
+
+
+def _make(method: str, settings: dict[str, Any]) -> tuple[Estimator, list[str]]:
+    """An estimator with the user's settings that apply to it; the rest are named."""
+    from fitdyn.estimators import get_estimator
+
+    allowed = {
+        "derivative": ("derivative", "smooth_states", "window", "polyorder"),
+        "integral": (),
+        "discrete": ("jitter_tolerance",),
+        "trajectory": ("start", "weights", "noise_sd", "frequencies", "max_nfev", "tol"),
+    }[method]
+    use = {k: v for k, v in settings.items() if k in allowed}
+    ignored = sorted(k for k in settings if k not in allowed)
+    return get_estimator(method, **use), ignored
+
+
+def choose_and_fit(
+    rec: Recording, equilibrium: np.ndarray | None = None, **settings: Any
+) -> tuple[Estimate, Estimator]:
+    """Pick an estimator for a recording, fit it and record the reasons.
+
+    Parameters
+    ----------
+    rec : Recording
+    equilibrium : ndarray, shape (2,), optional
+        A known equilibrium.
+    **settings
+        The policy's own settings (:data:`AUTO_SETTINGS`) and settings of the
+        individual estimators, passed to the chosen one where they apply (the
+        others are listed in the notes).
+
+    Returns
+    -------
+    estimate : Estimate
+        The chosen estimator's result with the reasons added to its notes and
+        ``settings["chosen_by"] = "auto"``.
+    estimator : Estimator
+        The chosen estimator instance.
+    """
+    policy = dict(AUTO_SETTINGS)
+    for k in list(settings):
+        if k in AUTO_SETTINGS:
+            policy[k] = settings.pop(k)
+    eq = None if equilibrium is None else np.asarray(equilibrium, dtype=float).reshape(2)
+    samp = rec.sampling()
+    n = rec.n_samples
+    steps = "uniform steps"
+    if not samp["uniform"]:
+        steps = "irregular steps"
+        if np.isfinite(samp["jitter"]):
+            steps += f" (largest deviation from the median step {100 * samp['jitter']:.3g} %)"
+    reasons = [f"auto: {n} samples in {rec.n_trajectories} trajectory(ies), {steps}"]
+
+    integ, ignored_i = _make("integral", settings)
+    base: Estimate | None = None
+    base_error: FitdynError | None = None
+    try:
+        base = integ.fit(rec, eq)
+    except FitdynError as exc:
+        base_error = exc
+        lag_int = float("nan")
+        reasons.append(f"auto: integral form failed ({exc})")
+    else:
+        lag_int = residual_lag1(base.residuals, rec.segment)
+        reasons.append(
+            f"auto: integral-form residual lag-1 autocorrelation {lag_int:.2f} "
+            f"(process-noise limit {policy['process_noise_lag1']:g})"
+        )
+    chosen: tuple[Estimate, Estimator] | None = None
+    ignored: list[str] = ignored_i
+    process = bool(np.isfinite(lag_int) and lag_int > policy["process_noise_lag1"])
+    if process:
+        reasons.append("auto: residuals behave like a random walk -> process noise dominates")
+    elif n > policy["max_trajectory_samples"]:
+        reasons.append(
+            f"auto: more than {policy['max_trajectory_samples']} samples -> "
+            "no nonlinear trajectory fit"
+        )
+        process = True
+    else:
+        traj, ignored_t = _make("trajectory", settings)
+        try:
+            est_t = traj.fit(rec, eq)
+        except FitdynError as exc:
+            reasons.append(f"auto: trajectory fit failed ({exc}); not used")
+            process = True
+        else:
+            lag_t = residual_lag1(est_t.residuals, rec.segment)
+            if not np.isfinite(lag_t) or lag_t <= policy["white_lag1"]:
+                reasons.append(
+                    f"auto: trajectory-fit residuals close to white (lag-1 {lag_t:.2f} <= "
+                    f"{policy['white_lag1']:g}) -> measurement noise dominates; the "
+                    "output-error fit is its maximum-likelihood estimate"
+                )
+                chosen, ignored = (est_t, traj), ignored_t
+            else:
+                reasons.append(
+                    f"auto: trajectory-fit residuals autocorrelated (lag-1 {lag_t:.2f} > "
+                    f"{policy['white_lag1']:g}) -> process noise matters"
+                )
+                process = True
+    if chosen is None and samp["uniform"]:
+        disc, ignored_d = _make("discrete", settings)
+        try:
+            est_d = disc.fit(rec, eq)
+        except (NoRealLogarithmError, SamplingError) as exc:
+            reasons.append(f"auto: discrete fit refused ({exc})")
+        except (ImportError, FitdynError) as exc:
+            reasons.append(f"auto: discrete fit unavailable ({exc})")
+        else:
+            rows = disc.design(rec, eq).row_segment
+            lag_d = residual_lag1(est_d.residuals, rows)
+            limit = -max(0.1, 2.5 / np.sqrt(max(est_d.n_used, 1)))
+            if np.isfinite(lag_d) and lag_d < limit:
+                reasons.append(
+                    f"auto: one-step residuals negatively autocorrelated (lag-1 {lag_d:.2f} "
+                    f"< {limit:.2f}) -> measurement noise as well; one-step fit not used"
+                )
+            else:
+                reasons.append(
+                    f"auto: uniform steps, one-step residuals close to white (lag-1 "
+                    f"{lag_d:.2f}) -> one-step discrete fit"
+                )
+                chosen, ignored = (est_d, disc), ignored_d
+    elif chosen is None:
+        reasons.append("auto: irregular steps -> no one-step discrete fit")
+    if chosen is None:
+        deriv, ignored_v = _make("derivative", settings)
+        try:
+            chosen, ignored = (deriv.fit(rec, eq), deriv), ignored_v
+            reasons.append("auto: derivative regression with smoothed states")
+        except FitdynError as exc:
+            reasons.append(f"auto: derivative regression failed ({exc})")
+    if chosen is None:
+        if base is None:
+            assert base_error is not None
+            raise base_error
+        reasons.append("auto: keeping the integral form")
+        chosen, ignored = (base, integ), ignored_i
+    est, estimator = chosen
+    if ignored:
+        reasons.append(f"auto: settings not used by '{est.method}': {', '.join(ignored)}")
+    new_settings = dict(est.settings)
+    new_settings["chosen_by"] = "auto"
+    est = replace(est, notes=tuple(reasons) + tuple(est.notes), settings=new_settings)
+    return est, estimator

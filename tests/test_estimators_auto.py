@@ -1,0 +1,105 @@
+"""The automatic choice: which estimator for which data, and the reasons recorded."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+import fitdyn
+from fitdyn.errors import NoRealLogarithmError
+from fitdyn.estimators import estimate
+from fitdyn.estimators.auto import choose_and_fit, residual_lag1
+
+A = np.array([[-0.3, 1.2], [-1.0, -0.2]])
+X_STAR = np.array([2.0, -1.0])
+T = np.linspace(0, 12, 200)
+STARTS = [[4.0, 1.0], [0.0, -3.0], [3.0, -2.0], [-1.0, 2.0], [1.0, 1.0]]
+
+
+def auto_notes(est):
+    return [n for n in est.notes if n.startswith("auto:")]
+
+
+def test_measurement_noise_chooses_the_trajectory_fit():
+    rec = fitdyn.simulate(A, X_STAR, [4.0, 1.0], T, measurement_noise=0.1, seed=1)
+    est, estimator = choose_and_fit(rec)
+    assert est.method == "trajectory" == estimator.name
+    assert est.settings["chosen_by"] == "auto"
+    assert any("measurement noise dominates" in n for n in auto_notes(est))
+    assert np.allclose(est.matrix, A, atol=0.05)
+
+
+def test_uniform_process_noise_chooses_the_discrete_fit():
+    pytest.importorskip("fitdyn.estimators.discrete")
+    rec = fitdyn.simulate(A, X_STAR, STARTS, T, process_noise=0.05, seed=2)
+    est, _ = choose_and_fit(rec)
+    assert est.method == "discrete"
+    assert any("one-step discrete fit" in n for n in auto_notes(est))
+
+
+def test_measurement_on_top_of_process_noise_avoids_the_one_step_fit():
+    rec = fitdyn.simulate(
+        A, X_STAR, [4.0, 1.0], T, process_noise=0.02, measurement_noise=0.05, seed=3
+    )
+    est, _ = choose_and_fit(rec)
+    assert est.method == "derivative"
+    assert any("measurement noise as well" in n for n in auto_notes(est))
+
+
+def test_irregular_process_noise_chooses_the_derivative_regression():
+    t = np.sort(np.r_[0.0, np.random.default_rng(4).uniform(0, 12, 199)])
+    rec = fitdyn.simulate(A, X_STAR, [4.0, 1.0], t, process_noise=0.05, seed=4)
+    est, _ = choose_and_fit(rec)
+    assert est.method == "derivative"
+    assert any("irregular steps" in n for n in auto_notes(est))
+
+
+def test_discrete_refusal_falls_back(monkeypatch):
+    discrete = pytest.importorskip("fitdyn.estimators.discrete")
+
+    def refuse(self, rec, equilibrium=None):
+        raise NoRealLogarithmError("negative real eigenvalue of F (test)")
+
+    monkeypatch.setattr(discrete.DiscreteEstimator, "fit", refuse)
+    rec = fitdyn.simulate(A, X_STAR, STARTS, T, process_noise=0.05, seed=2)
+    est, _ = choose_and_fit(rec)
+    assert est.method == "derivative"
+    assert any("discrete fit refused" in n for n in auto_notes(est))
+
+
+def test_choice_is_deterministic():
+    rec = fitdyn.simulate(A, X_STAR, [4.0, 1.0], T, measurement_noise=0.1, seed=5)
+    e1, _ = estimate(rec, "auto")
+    e2, _ = estimate(rec, "auto")
+    assert np.array_equal(e1.matrix, e2.matrix)
+    assert e1.notes == e2.notes
+
+
+def test_settings_are_forwarded_or_listed():
+    rec = fitdyn.simulate(A, X_STAR, [4.0, 1.0], T, measurement_noise=0.1, seed=6)
+    est, _ = choose_and_fit(rec, None, noise_sd=(0.1, 0.1), window=11)
+    assert est.method == "trajectory"
+    assert est.settings["noise_sd"] == (0.1, 0.1)
+    assert any("settings not used by 'trajectory': window" in n for n in est.notes)
+    # the policy's own settings: no nonlinear fit for long records
+    est, _ = choose_and_fit(rec, None, max_trajectory_samples=100)
+    assert est.method != "trajectory"
+    assert any("no nonlinear trajectory fit" in n for n in auto_notes(est))
+
+
+def test_known_equilibrium_is_passed_on():
+    rec = fitdyn.simulate(A, X_STAR, [4.0, 1.0], T, measurement_noise=0.1, seed=7)
+    est, _ = choose_and_fit(rec, X_STAR)
+    assert est.equilibrium_known
+    assert np.allclose(est.offset, -est.matrix @ X_STAR)
+
+
+def test_residual_lag1():
+    rng = np.random.default_rng(8)
+    white = rng.standard_normal((2000, 2))
+    walk = np.cumsum(white, axis=0)
+    seg = np.zeros(2000, dtype=int)
+    assert abs(residual_lag1(white, seg)) < 0.08
+    assert residual_lag1(walk, seg) > 0.95
+    # pairs never cross segments: alternating segments leave no pairs
+    assert np.isnan(residual_lag1(white[:10], np.arange(10)))
