@@ -103,3 +103,35 @@ def test_residual_lag1():
     assert residual_lag1(walk, seg) > 0.95
     # pairs never cross segments: alternating segments leave no pairs
     assert np.isnan(residual_lag1(white[:10], np.arange(10)))
+
+
+def test_ljung_box_matches_statsmodels_on_one_segment():
+    # reference: statsmodels.stats.diagnostic.acorr_ljungbox (Ljung & Box 1978)
+    from statsmodels.stats.diagnostic import acorr_ljungbox
+
+    from fitdyn.estimators.auto import ljung_box_p
+
+    rng = np.random.default_rng(0)
+    r = rng.normal(size=(300, 2))
+    r[:, 1] += 0.3 * np.roll(r[:, 1], 1)
+    ours = ljung_box_p(r, np.zeros(300, dtype=int), 10)
+    ref = [float(acorr_ljungbox(r[:, j], lags=[10])["lb_pvalue"].iloc[0]) for j in range(2)]
+    np.testing.assert_allclose(ours, ref, rtol=1e-10)
+
+
+def test_process_noise_moves_auto_off_the_output_error_fit():
+    # process noise leaves autocorrelated output-error residuals; the trajectory
+    # fit ignores it, so auto must not keep it (its intervals would be too narrow)
+    A = np.array([[-0.35, 0.30], [0.15, -0.20]])
+    rec = fitdyn.simulate(
+        A,
+        [0.0, 0.0],
+        [8.0, 3.0],
+        np.arange(300) * 0.5,
+        process_noise=[[0.002, 0.0], [0.0, 0.0005]],
+        measurement_noise=[0.1, 0.06],
+        seed=5,
+    )
+    est, _ = choose_and_fit(rec)
+    assert est.method != "trajectory"
+    assert any("Ljung-Box" in n for n in est.notes)

@@ -9,8 +9,11 @@ The policy (chosen with ``benchmarks/accuracy.py``; see its table):
 2. Unless that autocorrelation already shows process noise beyond doubt, or the
    record is too long for a nonlinear fit, refine with the output-error
    ``trajectory`` fit, the maximum-likelihood estimate under measurement noise.
-   Keep it when its own residuals are close to white: the deterministic model then
-   accounts for everything but independent measurement errors.
+   Keep it when its own residuals are close to white (lag-1 autocorrelation and a
+   Ljung-Box test over ten lags): the deterministic model then accounts for
+   everything but independent measurement errors.  Process noise leaves slow
+   wander in these residuals; the output-error fit would then report intervals
+   far too narrow, so it is not used.
 3. Otherwise process noise matters.  On uniform steps use the one-step
    ``discrete`` fit (exact for the sampled process) -- unless its one-step
    residuals are negatively autocorrelated, the signature of measurement noise on
@@ -35,7 +38,7 @@ from fitdyn.errors import FitdynError, NoRealLogarithmError, SamplingError
 from fitdyn.estimators.base import Estimate, Estimator
 from fitdyn.recording import Recording
 
-__all__ = ["choose_and_fit", "residual_lag1", "AUTO_SETTINGS"]
+__all__ = ["choose_and_fit", "residual_lag1", "ljung_box_p", "AUTO_SETTINGS"]
 
 #: The policy's own settings and their defaults.
 AUTO_SETTINGS: dict[str, Any] = {
@@ -45,6 +48,12 @@ AUTO_SETTINGS: dict[str, Any] = {
     "white_lag1": 0.5,
     # samples above which the nonlinear trajectory fit is skipped
     "max_trajectory_samples": 20000,
+    # Ljung-Box p-value (smaller of the two channels) below which the output-error
+    # residuals are not white: process noise is present and the trajectory fit, which
+    # ignores it, would report intervals that are too narrow
+    "whiteness_p": 1e-4,
+    # lags of that test
+    "whiteness_lags": 10,
 }
 
 
@@ -73,6 +82,46 @@ def residual_lag1(residuals: np.ndarray, segment: np.ndarray) -> float:
     with np.errstate(divide="ignore", invalid="ignore"):
         rho = np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
     return float(np.nanmean(rho)) if np.any(np.isfinite(rho)) else float("nan")
+
+
+def ljung_box_p(residuals: np.ndarray, segment: np.ndarray, lags: int = 10) -> np.ndarray:
+    """Ljung-Box p-value of each residual channel, autocorrelations pooled within segments.
+
+    ``Q = n (n + 2) sum_{k=1}^{L} r_k^2 / (n - k)`` referred to chi-square with ``L``
+    degrees of freedom (Ljung & Box, Biometrika 1978), where ``r_k`` pools the lag-k
+    products of every segment (pairs never cross segments or trajectories).
+
+    Parameters
+    ----------
+    residuals : ndarray, shape (m, 2)
+    segment : int ndarray, shape (m,)
+    lags : int
+        Number of lags ``L`` (reduced to a fifth of the rows for short records).
+
+    Returns
+    -------
+    ndarray, shape (2,)
+        NaN where the test cannot be made.
+    """
+    from scipy.stats import chi2
+
+    r = np.asarray(residuals, dtype=float)
+    seg = np.asarray(segment)
+    n = r.shape[0]
+    L = int(min(lags, n // 5))
+    if L < 1:
+        return np.full(r.shape[1], np.nan)
+    r = r - r.mean(axis=0)
+    den = np.sum(r * r, axis=0)
+    q = np.zeros(r.shape[1])
+    for k in range(1, L + 1):
+        same = seg[k:] == seg[:-k]
+        num = np.sum(r[k:][same] * r[:-k][same], axis=0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            rk = num / den
+        q += rk * rk / (n - k)
+    q *= n * (n + 2)
+    return np.where(den > 0, chi2.sf(q, L), np.nan)
 
 
 def _make(method: str, settings: dict[str, Any]) -> tuple[Estimator, list[str]]:
@@ -162,17 +211,23 @@ def choose_and_fit(
             process = True
         else:
             lag_t = residual_lag1(est_t.residuals, rec.segment)
-            if not np.isfinite(lag_t) or lag_t <= policy["white_lag1"]:
+            p_white = ljung_box_p(est_t.residuals, rec.segment, policy["whiteness_lags"])
+            p_min = float(np.nanmin(p_white)) if np.any(np.isfinite(p_white)) else np.nan
+            white_lag = not np.isfinite(lag_t) or lag_t <= policy["white_lag1"]
+            white_lb = not np.isfinite(p_min) or p_min >= policy["whiteness_p"]
+            if white_lag and white_lb:
                 reasons.append(
                     f"auto: trajectory-fit residuals close to white (lag-1 {lag_t:.2f} <= "
-                    f"{policy['white_lag1']:g}) -> measurement noise dominates; the "
+                    f"{policy['white_lag1']:g}, Ljung-Box p {p_min:.2g} >= "
+                    f"{policy['whiteness_p']:g}) -> measurement noise dominates; the "
                     "output-error fit is its maximum-likelihood estimate"
                 )
                 chosen, ignored = (est_t, traj), ignored_t
             else:
                 reasons.append(
-                    f"auto: trajectory-fit residuals autocorrelated (lag-1 {lag_t:.2f} > "
-                    f"{policy['white_lag1']:g}) -> process noise matters"
+                    f"auto: trajectory-fit residuals not white (lag-1 {lag_t:.2f}, "
+                    f"Ljung-Box p {p_min:.2g}) -> process noise matters; the output-error "
+                    "fit ignores it and would understate the uncertainty"
                 )
                 process = True
     if chosen is None and samp["uniform"]:
