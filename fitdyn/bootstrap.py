@@ -53,9 +53,13 @@ Bootstrap-after-bootstrap (Kilian, Rev. Econ. Stat. 80, 1998): a first bootstrap
 estimates the bias of the regression coefficients, the point estimate is corrected,
 a second bootstrap is generated from the corrected model (for the regenerating
 schemes) and each of its replicates is corrected by the same bias.  The correction
-is never allowed to change the stability verdict: when it would cross the
-stability boundary the uncorrected estimate is kept and a warning says so
-(:func:`fitdyn.estimators.discrete.bias_correction`).
+never decides stability: unlike Kilian's rule it is not shrunk to make the model
+stable, and when it would move the point estimate across the stability boundary
+the point estimate is kept uncorrected and a warning says so; the intervals and
+probabilities still come from the corrected bootstrap, which benchmarks/coverage.py
+shows to be the better calibrated choice near a center (coverage 0.95 against 0.92
+when the whole correction is dropped) (:func:`fitdyn.estimators.discrete.bias_correction`).
+On by default for the discrete fit (:func:`default_bias_correction`).
 
 Failed replicates
 -----------------
@@ -1107,7 +1111,7 @@ class _Recursion:
             s0 = int(self.starts[0])
             r0 = int(self.row_of[s0])
             for j in range(int(self.lens[0]) - 1):
-                np.matmul(out[s0 + j], Ft, out=out[s0 + j + 1])
+                np.dot(out[s0 + j], Ft, out=out[s0 + j + 1])
                 out[s0 + j + 1] += E[r0 + j]
         else:
             S = self.starts.size
@@ -1236,8 +1240,8 @@ class _Runner:
             gen = self.rec_gen
             if self.scheme == "residual":
                 e = gen.residuals(F, g, plan.p + plan.G)
-                idx = rng.integers(0, gen.m, size=(gen.m, size))
-                E = e[idx]
+                idx = rng.integers(0, gen.m, size=(gen.m, size), dtype=np.int32)
+                E = np.take(e, idx, axis=0)
             else:
                 cov = np.asarray(plan.estimate.residual_cov, dtype=float)
                 E = rng.standard_normal((gen.m, size, 2)) @ _sqrt_psd(cov).T

@@ -15,7 +15,12 @@ import statsmodels.api as sm
 from statsmodels.tsa.api import VAR
 
 from fitdyn import linalg2
-from fitdyn.errors import NoRealLogarithmError, SamplingError, TooFewSamplesError
+from fitdyn.errors import (
+    EstimationError,
+    NoRealLogarithmError,
+    SamplingError,
+    TooFewSamplesError,
+)
 from fitdyn.estimators import get_estimator
 from fitdyn.estimators.discrete import DiscreteEstimator, bias_correction
 from fitdyn.recording import KEPT, CleaningLog, Recording, RowFate
@@ -182,6 +187,13 @@ def test_jitter_refused_with_alternatives():
     # 0.5 % jitter passes the default 1 % tolerance
     t2 = np.arange(50) + rng.uniform(-0.002, 0.002, 50)
     DiscreteEstimator().design(make_recording(rng.normal(size=(50, 2)), t2))
+
+
+def test_settings_are_checked():
+    with pytest.raises(EstimationError, match="no setting"):
+        DiscreteEstimator(window=5)
+    with pytest.raises(EstimationError, match="jitter_tolerance"):
+        DiscreteEstimator(jitter_tolerance=-1)
 
 
 def test_too_few_pairs_and_degenerate_data():

@@ -33,7 +33,12 @@ from typing import Any, ClassVar, NamedTuple
 import numpy as np
 
 from fitdyn import linalg2
-from fitdyn.errors import NoRealLogarithmError, SamplingError, TooFewSamplesError
+from fitdyn.errors import (
+    EstimationError,
+    NoRealLogarithmError,
+    SamplingError,
+    TooFewSamplesError,
+)
 from fitdyn.estimators.base import Design, Estimate, Estimator, SystemBatch, lstsq
 from fitdyn.recording import Recording
 
@@ -173,8 +178,16 @@ class DiscreteEstimator(Estimator):
     needs_uniform_steps: ClassVar[bool] = True
     is_regression: ClassVar[bool] = True
 
-    def __init__(self, jitter_tolerance: float = 0.01, **settings: Any) -> None:
-        super().__init__(jitter_tolerance=float(jitter_tolerance), **settings)
+    def __init__(self, jitter_tolerance: float = 0.01, **unknown: Any) -> None:
+        from fitdyn.estimators.derivative import reject_unknown
+
+        reject_unknown(self.name, unknown, ("jitter_tolerance",))
+        tol = float(jitter_tolerance)
+        if not (np.isfinite(tol) and tol >= 0):
+            raise EstimationError(
+                f"jitter_tolerance must be a number >= 0, got {jitter_tolerance!r}"
+            )
+        super().__init__(jitter_tolerance=tol)
 
     # -- regression form -----------------------------------------------------------
     def design(
