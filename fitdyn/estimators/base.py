@@ -180,14 +180,21 @@ def lstsq(
     p = Z.shape[-1]
     k = Y.shape[-1]
 
+    weighted = w is not None
     if groups is not None:
         G = int(np.max(groups)) + 1
-        onehot = np.zeros((m, G))
-        onehot[np.arange(m), groups] = 1.0
-        wsum = W @ onehot  # (B?, G)
-        safe = np.where(wsum > 0, wsum, 1.0)
-        zmean = np.einsum("bm,mg,bmp->bgp", W, onehot, Z) / safe[..., None]
-        ymean = np.einsum("bm,mg,bmk->bgk", W, onehot, Y) / safe[..., None]
+        if G == 1 and not weighted:
+            zmean = Z.mean(axis=-2, keepdims=True)  # (B?, 1, p)
+            ymean = Y.mean(axis=-2, keepdims=True)
+        else:
+            onehot = np.zeros((m, G))
+            onehot[np.arange(m), groups] = 1.0
+            WG = W[:, :, None] * onehot  # (B?, m, G): weights per group
+            wsum = WG.sum(axis=-2)  # (B?, G)
+            safe = np.where(wsum > 0, wsum, 1.0)[..., None]
+            WGt = np.swapaxes(WG, -1, -2)  # (B?, G, m)
+            zmean = (WGt @ Z) / safe
+            ymean = (WGt @ Y) / safe
         Zc = Z - zmean[:, groups, :]
         Yc = Y - ymean[:, groups, :]
     else:
@@ -197,8 +204,9 @@ def lstsq(
     scale = np.sqrt(np.mean(Zc * Zc, axis=-2, keepdims=True))  # (B?, 1, p)
     scale = np.where(scale > 0, scale, 1.0)
     Zs = Zc / scale
-    ZtZ = np.einsum("bm,bmp,bmq->bpq", W, Zs, Zs)
-    ZtY = np.einsum("bm,bmp,bmk->bpk", W, Zs, Yc)
+    ZsT = np.swapaxes(Zs * W[..., None], -1, -2) if weighted else np.swapaxes(Zs, -1, -2)
+    ZtZ = ZsT @ Zs
+    ZtY = ZsT @ Yc
     ZtZ = np.broadcast_to(ZtZ, (B, p, p))
     ZtY = np.broadcast_to(ZtY, (B, p, k))
     # a rank-deficient replicate (e.g. a resample of one repeated row) yields NaN
