@@ -270,7 +270,5 @@ def test_batch_equals_loop(name):
 @pytest.mark.parametrize("name", [m for m in NAMES if m != "auto"])
 def test_unknown_setting_is_refused(name):
     _skip_missing(name)
-    if name == "discrete":
-        pytest.skip("the discrete estimator stores unknown settings (its owner is told)")
     with pytest.raises(EstimationError, match="no setting"):
         get_estimator(name, no_such_setting=1)

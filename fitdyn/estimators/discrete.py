@@ -101,11 +101,19 @@ def one_step_pairs(rec: Recording, jitter_tolerance: float = 0.01) -> tuple[np.n
     worst = int(np.argmax(dev))
     if dev[worst] > jitter_tolerance:
         k = int(first[worst])
+        ratio = steps / h
+        on_grid = bool(np.all(np.abs(ratio - np.round(ratio)) <= jitter_tolerance * ratio))
+        hint = (
+            "; the steps are whole multiples of the median step (missing samples): read "
+            "the file with gap_factor=1.5 (--gap-factor 1.5) to treat each hole as a gap"
+            if on_grid
+            else ""
+        )
         raise SamplingError(
             f"the discrete estimator needs a uniform step, but the step after time "
-            f"{rec.times[k]!r} is {steps[worst]!r} against a median of {h!r} "
-            f"({100 * dev[worst]:.3g} % off, tolerance {100 * jitter_tolerance:.3g} %); "
-            f"{_ALTERNATIVES}",
+            f"{float(rec.times[k]):.6g} is {float(steps[worst]):.6g} against a median of "
+            f"{h:.6g} ({100 * dev[worst]:.3g} % off, tolerance "
+            f"{100 * jitter_tolerance:.3g} %){hint}; {_ALTERNATIVES}",
             source=rec.source,
             row=int(rec.source_rows[k + 1]),
         )
