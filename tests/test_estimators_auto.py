@@ -135,3 +135,28 @@ def test_process_noise_moves_auto_off_the_output_error_fit():
     est, _ = choose_and_fit(rec)
     assert est.method != "trajectory"
     assert any("Ljung-Box" in n for n in est.notes)
+
+
+def test_mixed_noise_is_warned_about():
+    # process and measurement noise together: auto says its intervals are too narrow
+    A = np.array([[-0.35, 0.30], [0.15, -0.20]])
+    rec = fitdyn.simulate(
+        A,
+        [0.0, 0.0],
+        [8.0, 3.0],
+        np.arange(280) * 0.5,
+        process_noise=[[0.002, 0.0], [0.0, 0.0005]],
+        measurement_noise=[0.1, 0.06],
+        seed=5,
+    )
+    est, _ = choose_and_fit(rec)
+    assert any("process noise and measurement noise" in w for w in est.warnings)
+
+
+def test_pure_measurement_noise_is_not_warned_about_a_mix():
+    A = np.array([[-0.3, -1.0], [1.0, -0.3]])
+    rec = fitdyn.simulate(A, [1.0, 2.0], [3.0, 0.0], np.linspace(0, 30, 200),
+                          measurement_noise=0.05, seed=2)  # fmt: skip
+    est, _ = choose_and_fit(rec)
+    assert est.method == "trajectory"
+    assert not any("measurement noise appear" in w for w in est.warnings)
