@@ -134,6 +134,17 @@ _LEGEND_TRAJECTORIES = 6
 # ----------------------------------------------------------------------------------
 # small helpers
 # ----------------------------------------------------------------------------------
+
+
+def _estimate_handle(label: str) -> Any:
+    """Legend entry of the point-estimate marker (same look in every figure)."""
+    from matplotlib.lines import Line2D
+
+    return Line2D(
+        [], [], marker="P", ms=8, ls="none", mfc=PALETTE["estimate"], mec="white", label=label
+    )
+
+
 def _plain(text: Any) -> str:
     """User text shown literally by matplotlib (a ``$`` never starts mathtext)."""
     return str(text).replace("$", r"\$")
@@ -870,19 +881,7 @@ def _eigen(
             color=PALETTE["ink"],
             zorder=6,
         )
-    handles.insert(
-        0,
-        Line2D(
-            [],
-            [],
-            marker="P",
-            ms=8,
-            ls="none",
-            mfc=PALETTE["estimate"],
-            mec="white",
-            label="point estimate",
-        ),
-    )
+    handles.insert(0, _estimate_handle("point estimate"))
     # limits: include 0 on both axes, symmetric imaginary range
     allx = np.concatenate([np.ravel(v) for v in xs] + [[0.0]])
     ally = np.abs(np.concatenate([np.ravel(v) for v in ys]))
@@ -1151,19 +1150,7 @@ def _tracedet(fit: Any, ax: Any = None, *, max_points: int = 4000) -> Any:
         mew=0.8,
         zorder=9,
     )
-    handles.insert(
-        0,
-        Line2D(
-            [],
-            [],
-            marker="P",
-            ms=8,
-            ls="none",
-            mfc=PALETTE["estimate"],
-            mec="white",
-            label=f"estimate: {fit.label}",
-        ),
-    )
+    handles.insert(0, _estimate_handle(f"estimate: {fit.label}"))
     ax.set_xlim(-T, T)
     ax.set_ylim(-D1, D2)
     nm = _names(fit)
