@@ -27,6 +27,11 @@ measurement
     200 uniform samples, measurement noise 5 %.
 trajectories
     6 trajectories of 40 uniform samples, process noise.
+mixed
+    300 uniform samples, process noise and measurement noise together, the
+    measurement sd twice the sd of the one-step process innovation
+    ``sqrt(Q_jj h)`` (the regime where least squares on the samples is
+    attenuated).
 near-center
     300 uniform samples of a spiral whose real part is drawn in [-0.04, 0.04] times
     the frequency (half the truths unstable), process noise.
@@ -88,6 +93,13 @@ CONFIGS: dict[str, list[tuple[str, str, bool]]] = {
         ("discrete", "residual", True),
         ("discrete", "cases", False),
     ],
+    "mixed": [
+        ("instrumental", "parametric", True),
+        ("instrumental", "blocks", False),
+        ("instrumental", "parametric", False),
+        ("derivative", "blocks", False),
+        ("discrete", "residual", True),
+    ],
     "near-center": [
         ("discrete", "residual", True),
         ("discrete", "residual", False),
@@ -100,6 +112,8 @@ TRAJECTORY_REPLICATES = 150
 
 PROCESS_PCT = 20.0
 MEASURE_PCT = 5.0
+#: in the "mixed" scenario: measurement sd / sd of the one-step process innovation
+MIXED_RATIO = 2.0
 
 
 def _rotation(rng: np.random.Generator) -> np.ndarray:
@@ -136,7 +150,7 @@ def _dataset(scenario: str, index: int, seed: int):
     xs = rng.normal(0, 2.0, 2)
     traj = 6 if scenario == "trajectories" else 1
     n = {"short": 50, "irregular": 150, "process": 300, "measurement": 200,
-         "trajectories": 40, "near-center": 300}[scenario]  # fmt: skip
+         "trajectories": 40, "near-center": 300, "mixed": 300}[scenario]  # fmt: skip
     # span: about three slow time constants (spirals: at least three periods)
     span = 3.0 / max(slow, 0.05)
     if np.any(lam.imag != 0):
@@ -152,9 +166,12 @@ def _dataset(scenario: str, index: int, seed: int):
     x0 = xs + rng.normal(0, 3.0, (traj, 2))
     clean = simulate(A, xs, x0, t, trajectories=traj)
     sd = clean.values.std(axis=0)
-    process = scenario in ("short", "process", "trajectories", "near-center")
+    process = scenario in ("short", "process", "trajectories", "near-center", "mixed")
     Q = np.diag((PROCESS_PCT / 100 * sd) ** 2 * rho) if process else None
     meas = MEASURE_PCT / 100 * sd if scenario in ("irregular", "measurement") else None
+    if scenario == "mixed":  # sensor noise twice the one-step process innovation
+        assert Q is not None
+        meas = MIXED_RATIO * np.sqrt(np.diag(Q) * (t[1] - t[0]))
     rec = simulate(A, xs, x0, t, process_noise=Q, measurement_noise=meas, trajectories=traj,
                    seed=rng)  # fmt: skip
     return A, rec
@@ -217,7 +234,7 @@ def main() -> None:
           f"{args.replicates} replicates each ({TRAJECTORY_REPLICATES} for the trajectory fit); "
           f"{wall:.0f} s on {args.workers} workers")  # fmt: skip
     print("first row of each scenario: the configuration fit() uses by default there")
-    head = (f"{'scenario':<13}{'estimator':<11}{'scheme':<11}{'bias':<6}{'trace':>7}"
+    head = (f"{'scenario':<13}{'estimator':<14}{'scheme':<11}{'bias':<6}{'trace':>7}"
             f"{'det':>7}{'maxre':>7}{'width':>8}{'Brier':>8}{'failed':>8}")  # fmt: skip
     print(head)
     print("-" * len(head))
@@ -232,7 +249,7 @@ def main() -> None:
             ok = np.isfinite(ps)
             brier = float(np.mean((ps[ok] - st[ok]) ** 2)) if ok.any() else np.nan
             nf = sum(r["failed"] for r in rows)
-            print(f"{s:<13}{method:<11}{scheme:<11}{'yes' if bc else 'no':<6}"
+            print(f"{s:<13}{method:<14}{scheme:<11}{'yes' if bc else 'no':<6}"
                   f"{cov['trace']:>7.3f}{cov['det']:>7.3f}{cov['maxre']:>7.3f}"
                   f"{width:>8.3f}{brier:>8.3f}{nf:>8d}")  # fmt: skip
             for p, y in zip(ps[ok], st[ok], strict=True):

@@ -134,6 +134,8 @@ _SECONDS_PER = {"ms": 1e-3, "s": 1.0, "min": 60.0, "h": 3600.0, "d": 86400.0}
 _COMMA_DECIMAL = re.compile(r"[+-]?\d+,\d+(?:[eE][+-]?\d+)?")
 _DOT_DECIMAL = re.compile(r"[+-]?\d*\.\d+(?:[eE][+-]?\d+)?")
 _NUMBERISH = re.compile(r"[+-]?(?:\d+[.,]?\d*|[.,]\d+)(?:[eE][+-]?\d+)?")
+#: what a duration cell must contain: a clock colon or a unit word
+_DURATIONISH = re.compile(r"[:A-Za-z]")
 
 _UNIT_PATTERNS = (
     re.compile(r"^(?P<name>.*?\S)\s*\[(?P<unit>[^\[\]]*)\]$"),
@@ -946,10 +948,13 @@ def _parse_time(table: _Table, col: _Column, unit_hint: str | None, time_unit: s
             except (ValueError, TypeError, OverflowError):
                 durations = pd.Series(pd.NaT, index=range(n), dtype="timedelta64[ns]")
             numeric_cells = np.asarray([bool(_NUMBERISH.fullmatch(c)) for c in text], dtype=bool)
+            # pandas reads bare digit groups such as '1 2' as nanoseconds; a duration
+            # cell must show a clock (00:01:30) or a unit (90 s, 1 day)
+            formed = np.asarray([bool(_DURATIONISH.search(c)) for c in text], dtype=bool)
             dsec = np.array(
                 (durations / pd.Timedelta(seconds=1)).to_numpy(dtype=float, na_value=np.nan)
             )
-            dsec[numeric_cells] = np.nan
+            dsec[numeric_cells | ~formed] = np.nan
             dgood = ~np.isnan(dsec)
             if 2 * int(np.count_nonzero(dgood)) >= present and dgood.any():
                 code = np.full(n, _BAD, dtype=np.int8)

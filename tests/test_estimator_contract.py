@@ -27,10 +27,17 @@ A_TRUE = np.array([[-0.3, 1.2], [-1.0, -0.2]])  # stable spiral
 X_STAR = np.array([2.0, -1.0])
 
 NAMES = [m for m in METHODS if m != "auto"] + ["auto"]
-REGRESSIONS = ["derivative", "integral", "discrete"]
+REGRESSIONS = ["derivative", "integral", "discrete", "instrumental"]
 
 #: samples over [0, 10] that make each method's discretisation error < 1e-6
-FINE = {"derivative": 2001, "integral": 8001, "discrete": 201, "trajectory": 201, "auto": 8001}
+FINE = {
+    "derivative": 2001,
+    "integral": 8001,
+    "discrete": 201,
+    "instrumental": 201,
+    "trajectory": 201,
+    "auto": 8001,
+}
 
 #: settings for batch = loop (the derivative's window is otherwise chosen from the
 #: recording's own values, once, and reused for replicates)

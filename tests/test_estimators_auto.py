@@ -42,8 +42,10 @@ def test_measurement_on_top_of_process_noise_avoids_the_one_step_fit():
         A, X_STAR, [4.0, 1.0], T, process_noise=0.02, measurement_noise=0.05, seed=3
     )
     est, _ = choose_and_fit(rec)
-    assert est.method == "derivative"
+    assert est.method == "instrumental"
     assert any("measurement noise as well" in n for n in auto_notes(est))
+    assert any("instruments" in n for n in auto_notes(est))
+    assert not any("could not be used" in w for w in est.warnings)
 
 
 def test_irregular_process_noise_chooses_the_derivative_regression():
@@ -137,19 +139,36 @@ def test_process_noise_moves_auto_off_the_output_error_fit():
     assert any("Ljung-Box" in n for n in est.notes)
 
 
-def test_mixed_noise_is_warned_about():
-    # process and measurement noise together: auto says its intervals are too narrow
+def _chamber_like(seed: int = 5):
     A = np.array([[-0.35, 0.30], [0.15, -0.20]])
-    rec = fitdyn.simulate(
+    return fitdyn.simulate(
         A,
         [0.0, 0.0],
         [8.0, 3.0],
         np.arange(280) * 0.5,
         process_noise=[[0.002, 0.0], [0.0, 0.0005]],
         measurement_noise=[0.1, 0.06],
-        seed=5,
+        seed=seed,
     )
-    est, _ = choose_and_fit(rec)
+
+
+def test_mixed_noise_chooses_the_instrumental_fit():
+    est, _ = choose_and_fit(_chamber_like())
+    assert est.method == "instrumental"
+    assert not any("too narrow" in w for w in est.warnings)
+
+
+def test_mixed_noise_warned_about_when_the_instrumental_fit_refuses(monkeypatch):
+    from fitdyn.errors import NoRealLogarithmError
+    from fitdyn.estimators import instrumental
+
+    def refuse(self, rec, equilibrium=None):
+        raise NoRealLogarithmError("no real logarithm (test)")
+
+    monkeypatch.setattr(instrumental.InstrumentalEstimator, "fit", refuse)
+    est, _ = choose_and_fit(_chamber_like())
+    assert est.method == "derivative"
+    assert any("instrumental-variable fit refused" in n for n in est.notes)
     assert any("process noise and measurement noise" in w for w in est.warnings)
 
 

@@ -348,6 +348,16 @@ def test_durations_are_seconds(tmp_path):
     assert rec.time_unit == "s" and rec.time_origin is None
 
 
+def test_digit_groups_are_not_durations(tmp_path):
+    # pandas.to_timedelta reads '1 2' as nanoseconds; a time cell like that is a
+    # typo, not a duration (found by the property test)
+    text = "time,a,b\n1 2,1,2\n3 4,2,3\n"
+    with pytest.raises(FitdynError, match=r"column 'time', row 2: cannot be read as times"):
+        read(write(tmp_path, "g.csv", text))
+    rec = read(write(tmp_path, "u.csv", "time,a,b\n0 s,1,2\n90 s,2,3\n3 min,3,5\n"))
+    np.testing.assert_allclose(rec.times, [0, 90, 180])
+
+
 @pytest.mark.parametrize(
     ("header", "unit"),
     [("t (min)", "min"), ("seconds", "s"), ("Time_h", "h"), ("TIME [ms]", "ms"), ("t", None)],

@@ -31,6 +31,7 @@ _REGISTRY: dict[str, tuple[str, str]] = {
     "derivative": ("fitdyn.estimators.derivative", "DerivativeEstimator"),
     "integral": ("fitdyn.estimators.integral", "IntegralEstimator"),
     "discrete": ("fitdyn.estimators.discrete", "DiscreteEstimator"),
+    "instrumental": ("fitdyn.estimators.instrumental", "InstrumentalEstimator"),
     "trajectory": ("fitdyn.estimators.trajectory", "TrajectoryEstimator"),
 }
 

@@ -351,9 +351,17 @@ class Estimator(ABC):
     def to_system(self, C: np.ndarray, c: np.ndarray, design: Design) -> SystemBatch:
         """Map batched coefficients ``C`` (B, p, 2) and intercepts ``c`` (B, G, 2)."""
 
+    def solve(self, design: Design, w: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """Batched coefficients ``C`` (B, p, 2) and intercepts ``c`` (B, G, 2).
+
+        Ordinary (weighted) least squares by default; estimators with another
+        linear solve (instrumental variables) override it.
+        """
+        return lstsq(design.Z, design.Y, design.groups, w)
+
     def fit_design(self, design: Design, w: np.ndarray | None = None) -> SystemBatch:
         """Batched solve: the coefficients for every replicate, mapped to systems."""
-        C, c = lstsq(design.Z, design.Y, design.groups, w)
+        C, c = self.solve(design, w)
         return self.to_system(C, c, design)
 
     def fit_values(
@@ -366,7 +374,7 @@ class Estimator(ABC):
     def fit(self, rec: Recording, equilibrium: np.ndarray | None = None) -> Estimate:
         """Point estimate: the one-replicate case of :meth:`fit_design`."""
         d = self.design(rec, equilibrium)
-        C, c = lstsq(d.Z, d.Y, d.groups)
+        C, c = self.solve(d)
         sysb = self.to_system(C, c, d)
         return self.make_estimate(rec, d, C[0], c[0], sysb, equilibrium)
 

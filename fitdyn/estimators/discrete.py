@@ -39,7 +39,7 @@ from fitdyn.errors import (
     SamplingError,
     TooFewSamplesError,
 )
-from fitdyn.estimators.base import Design, Estimate, Estimator, SystemBatch, lstsq
+from fitdyn.estimators.base import Design, Estimate, Estimator, SystemBatch
 from fitdyn.recording import Recording
 
 __all__ = [
@@ -242,7 +242,7 @@ class DiscreteEstimator(Estimator):
             When the one-step matrix has an eigenvalue on the closed negative real axis.
         """
         d = self.design(rec, equilibrium)
-        C, c = lstsq(d.Z, d.Y, d.groups)
+        C, c = self.solve(d)
         sysb = self.to_system(C, c, d)
         if not sysb.valid[0]:
             F = C[0].T
