@@ -14,8 +14,8 @@ spiral with process noise.  Measured in the same run:
   ("fits only") times just the three library calls on pre-generated series, the
   most favourable case for the loop.
 
-Target (issue 4): at least 20x faster than the loop, under 1 s on 2 cores, peak
-memory under 500 MB.
+Target (issue 4): at least 20x faster than the loop's "fits only" figure, under 1 s
+on 2 cores, peak memory under 500 MB.
 
 Usage::
 

@@ -3,8 +3,12 @@
 Every scheme produces replicate systems ``(A*, b*)`` through the estimator's own
 batched code (``design`` -> ``Estimator.solve`` -> ``to_system``
 for the regression estimators), so the point estimate is the one-replicate case of
-the same computation.  Replicates are generated in chunks (memory stays bounded)
-with no Python loop over replicates for the regression estimators.
+the same computation.  The recursive schemes of the one-step fit never store the
+replicate series: they accumulate the regression's sums while regenerating them and
+pass the normal equations (:func:`~fitdyn.estimators.base.moments_from_sums`) to
+the same solve (:func:`~fitdyn.estimators.base.solve_moments`) and ``to_system``.
+Replicates are generated in chunks (memory stays bounded) with no Python loop over
+replicates for the regression estimators.
 
 Schemes
 -------
@@ -15,7 +19,8 @@ Schemes
     centred residuals, rescaled by ``sqrt(m / (m - k))`` for the ``k`` coefficients
     per equation (Efron & Tibshirani, *An Introduction to the Bootstrap*, 1993,
     ch. 9; Davison & Hinkley, *Bootstrap Methods and their Application*, 1997,
-    sec. 8.2, from memory).  The loop runs over time steps only.
+    sec. 8.2, from memory).  The loop runs over time steps only (in blocks of
+    steps, vectorised over replicates and segments; see :class:`_Recursion`).
 ``blocks``
     Moving-block bootstrap of the regression rows (Kuensch, Ann. Stat. 17, 1989):
     blocks of consecutive rows, never crossing a segment, are drawn with
@@ -79,6 +84,7 @@ and licensed practice.
 from __future__ import annotations
 
 import sys
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -87,7 +93,15 @@ import numpy as np
 from fitdyn import linalg2
 from fitdyn.classify import GENERIC, LABELS, classify_codes
 from fitdyn.errors import EstimationError, FitdynError
-from fitdyn.estimators.base import Estimate, Estimator, SystemBatch, equilibrium_from
+from fitdyn.estimators.base import (
+    Estimate,
+    Estimator,
+    Moments,
+    SystemBatch,
+    equilibrium_from,
+    moments_from_sums,
+    solve_moments,
+)
 from fitdyn.recording import Recording
 
 __all__ = [
@@ -1053,8 +1067,14 @@ class _Plan:
         return np.where(s.valid[:, None], th, np.nan)
 
     def refit_weights(self, w: np.ndarray) -> np.ndarray:
+        """Coefficients of replicate row weights (B, m) on the point design."""
         d = self.design
         C, c = self.est.solve(d, w)
+        return _theta_of(C, c)
+
+    def refit_moments(self, mom: Moments) -> np.ndarray:
+        """Coefficients of replicate normal equations (the solve of the point fit)."""
+        C, c = solve_moments(mom)
         return _theta_of(C, c)
 
 
@@ -1070,77 +1090,189 @@ def _split_theta(theta: np.ndarray, p: int, G: int) -> tuple[np.ndarray, np.ndar
     return C, c
 
 
-class _Recursion:
-    """Recursive one-step regeneration of every segment (vectorised over replicates).
+#: ``fill(rows, shift, out)``: writes the innovations of design rows ``rows`` (T, a)
+#: plus ``shift`` (2,) into ``out`` (2, T, a, replicates); see _Recursion.moments.
+_Fill = Callable[[np.ndarray, np.ndarray, np.ndarray], None]
 
-    Segments are sorted by length so that at each time step the active segments are
-    a prefix; the state is stored time-major, shape (n, B, 2).
+#: States (time steps x active segments x replicates) per time block of the
+#: recursive regeneration: enough to amortise numpy's per-call cost, few enough for
+#: a block to stay in the processor cache.
+_BLOCK_STATES = 2**17
+
+#: Most replicates per chunk of the recursive regeneration (its memory per replicate
+#: does not grow with the record length).
+_MOST_RECURSIVE = 16384
+
+
+class _Recursion:
+    """Recursive one-step regeneration of every segment, accumulated as moments.
+
+    A replicate's one-step regression needs only sums over its rows (``sum z`` and
+    ``sum y`` per intercept group, ``sum z z'``, ``sum z y'``), so the replicate
+    series are never stored.  Every segment is regenerated from its first observed
+    sample as deviations ``u = x - r`` from a fixed reference point ``r`` (the mean
+    of the regressor rows when an intercept is fitted, the known equilibrium
+    otherwise), ``u_{k+1} = F u_k + (F r + g - r) + e_k``, and the sums are
+    accumulated block by block over time, vectorised over replicates and segments;
+    :func:`~fitdyn.estimators.base.moments_from_sums` turns them into the normal
+    equations the point fit solves.  Segments are sorted by length so that the
+    active segments are a prefix, and a time block never runs past the end of an
+    active segment.  A block's states are stored time-major, shape
+    (T + 1, segments, 2, replicates).
     """
 
     def __init__(self, plan: _Plan) -> None:
         d = plan.design
-        self.first = d.info["first"]
         rec = plan.rec
-        self.n = rec.n_samples
-        seg = np.asarray(rec.segment)
-        bounds = rec.segment_bounds()
-        starts = np.array([s for s, _ in bounds])
-        lens = np.array([e - s for s, e in bounds])
-        order = np.argsort(-lens, kind="stable")
-        self.starts = starts[order]
-        self.lens = lens[order]
-        # design row of the pair starting at each sample
-        row_of = np.full(self.n, -1)
-        row_of[self.first] = np.arange(self.first.size)
-        self.row_of = row_of
-        self.seg = seg
+        self.first = d.info["first"]
+        self.m = int(self.first.size)
         self.eq = plan.eq
         self.base = np.asarray(rec.values, dtype=float)
         if self.eq is not None:
             self.base = self.base - self.eq
-        self.m = self.first.size
+        bounds = rec.segment_bounds()
+        starts = np.array([s for s, _ in bounds], dtype=np.intp)
+        lens = np.array([e - s for s, e in bounds], dtype=np.intp)
+        keep = lens >= 2  # a lone sample has no pair
+        order = np.argsort(-lens[keep], kind="stable")
+        self.starts = starts[keep][order]
+        self.steps = lens[keep][order] - 1  # pairs (design rows) per segment
+        row_of = np.full(rec.n_samples, -1, dtype=np.intp)
+        row_of[self.first] = np.arange(self.m)
+        self.row_of = row_of
+        S = self.starts.size
+        self.G = d.n_groups
+        if self.G:
+            groups = np.asarray(d.groups)
+            seg_group = groups[row_of[self.starts]]
+            same = np.diff(np.asarray(d.row_segment)) == 0  # rows are consecutive
+            if np.any(np.diff(groups)[same] != 0):
+                raise EstimationError(
+                    "internal: the recursive regeneration needs one intercept group per segment"
+                )
+            self.onehot = np.zeros((self.G, S))
+            self.onehot[seg_group, np.arange(S)] = 1.0
+            self.rows = np.bincount(groups, minlength=self.G)
+            self.origin = self.base[self.first].mean(axis=0)
+        else:
+            self.rows = np.array([self.m])
+            self.origin = np.zeros(2)
+
+    def bytes_per_replicate(self) -> int:
+        """Memory of one replicate in a chunk (block buffers at one step, sums)."""
+        return 8 * (19 * int(self.starts.size) + 48)
 
     def residuals(self, F: np.ndarray, g: np.ndarray, dof_params: int) -> np.ndarray:
+        """Centred one-step residuals (m, 2) rescaled for the fitted coefficients."""
         z = self.base[self.first]
         y = self.base[self.first + 1]
         e = y - z @ F.T - g
         e = e - e.mean(axis=0)
         return e * np.sqrt(self.m / max(self.m - dof_params, 1))
 
-    def run(self, F: np.ndarray, g: np.ndarray, E: np.ndarray) -> np.ndarray:
-        """Replicate values (B, n, 2) from innovations E (m, B, 2) in design-row order.
+    def _blocks(self, size: int) -> list[tuple[int, int, int]]:
+        """``(j0, T, active)``: time blocks of ``T`` steps from step ``j0``."""
+        out = []
+        j = 0
+        active = self.starts.size
+        while True:
+            while active and self.steps[active - 1] <= j:
+                active -= 1
+            if not active:
+                return out
+            T = max(1, _BLOCK_STATES // (active * size))
+            T = int(min(T, self.steps[active - 1] - j))
+            out.append((j, T, active))
+            j += T
 
-        ``E`` is overwritten (the constant ``g`` is added to it in place).
+    def moments(self, F: np.ndarray, g: np.ndarray, size: int, fill: _Fill) -> Moments:
+        """Normal equations of ``size`` regenerated replicates.
+
+        Parameters
+        ----------
+        F : ndarray, shape (2, 2)
+            One-step matrix of the model.
+        g : ndarray, shape (2,)
+            One-step constant (zero with a known equilibrium).
+        size : int
+            Number of replicates.
+        fill : callable
+            ``fill(rows, shift, out)`` writes the innovations of the design rows
+            ``rows`` (int array (T, active)) plus ``shift`` (2,) into ``out``,
+            shape (2, T, active, size).
+
+        Returns
+        -------
+        Moments
         """
-        B = E.shape[1]
-        E += g
-        out = np.empty((self.n, B, 2))
-        out[:] = self.base[:, None, :]
-        Ft = np.ascontiguousarray(F.T)
-        if self.starts.size == 1:  # one segment: rows are consecutive time steps
-            s0 = int(self.starts[0])
-            r0 = int(self.row_of[s0])
-            for j in range(int(self.lens[0]) - 1):
-                np.dot(out[s0 + j], Ft, out=out[s0 + j + 1])
-                out[s0 + j + 1] += E[r0 + j]
-        else:
-            S = self.starts.size
-            cur = np.broadcast_to(self.base[self.starts][:, None, :], (S, B, 2)).copy()
-            active = S
-            for j in range(int(self.lens.max()) - 1):
-                while active and self.lens[active - 1] <= j + 1:
-                    active -= 1
-                if not active:
-                    break
-                pos = self.starts[:active] + j
-                nxt = cur[:active] @ Ft
-                nxt += E[self.row_of[pos]]
-                cur[:active] = nxt
-                out[pos + 1] = nxt
-        vals = np.swapaxes(out, 0, 1)  # time-major storage suits the reductions over time
-        if self.eq is not None:
-            vals = vals + self.eq
-        return vals
+        F = np.ascontiguousarray(F, dtype=float)
+        r = self.origin
+        shift = F @ r + np.asarray(g, dtype=float) - r
+        S = int(self.starts.size)
+        blocks = self._blocks(size)
+        cap_u = max((T + 1) * a for _, T, a in blocks) * 2 * size
+        cap_e = max(T * a for _, T, a in blocks) * 2 * size
+        ubuf = np.empty(cap_u)
+        ebuf = np.empty(cap_e)
+        cur = np.empty((S, 2, size))
+        cur[:] = (self.base[self.starts] - r)[:, :, None]
+        szz = np.zeros((3, size))  # sum z z': (0, 0), (0, 1), (1, 1)
+        szy = np.zeros((4, size))  # sum z y': (0, 0), (0, 1), (1, 0), (1, 1)
+        sz = np.zeros((S, 2, size))
+        sy = np.zeros((S, 2, size))
+        steps = np.arange(max(T for _, T, _ in blocks))[:, None]
+        for j0, T, a in blocks:
+            U = ubuf[: (T + 1) * a * 2 * size].reshape(T + 1, a, 2, size)
+            E = ebuf[: T * a * 2 * size].reshape(2, T, a, size)
+            fill(self.row_of[self.starts[:a] + j0 + steps[:T]], shift, E)
+            Et = E.transpose(1, 2, 0, 3)  # (T, a, 2, size)
+            U[0] = cur[:a]
+            for t in range(T):
+                np.matmul(F, U[t], out=U[t + 1])
+                U[t + 1] += Et[t]
+            z0, z1 = U[:T, :, 0], U[:T, :, 1]
+            y0, y1 = U[1:, :, 0], U[1:, :, 1]
+            szz[0] += np.einsum("tsb,tsb->b", z0, z0)
+            szz[1] += np.einsum("tsb,tsb->b", z0, z1)
+            szz[2] += np.einsum("tsb,tsb->b", z1, z1)
+            szy[0] += np.einsum("tsb,tsb->b", z0, y0)
+            szy[1] += np.einsum("tsb,tsb->b", z0, y1)
+            szy[2] += np.einsum("tsb,tsb->b", z1, y0)
+            szy[3] += np.einsum("tsb,tsb->b", z1, y1)
+            blk = U[:T].sum(axis=0)
+            sz[:a] += blk
+            sy[:a] += blk
+            sy[:a] += U[T] - U[0]
+            cur[:a] = U[T]
+        Szz = np.stack([szz[0], szz[1], szz[1], szz[2]], axis=-1).reshape(size, 2, 2)
+        Szy = np.moveaxis(szy, 0, -1).reshape(size, 2, 2)
+        if not self.G:
+            return moments_from_sums(self.rows, Szz, Szy)
+        sz_g = np.einsum("gs,sib->bgi", self.onehot, sz)
+        sy_g = np.einsum("gs,sib->bgi", self.onehot, sy)
+        return moments_from_sums(self.rows, Szz, Szy, sz_g, sy_g, r, r)
+
+
+def _resampled_innovations(rng: np.random.Generator, e: np.ndarray) -> _Fill:
+    """``fill`` for :meth:`_Recursion.moments`: rows of ``e`` drawn with replacement."""
+    cols = [np.ascontiguousarray(e[:, i]) for i in range(2)]
+
+    def fill(rows: np.ndarray, shift: np.ndarray, out: np.ndarray) -> None:
+        idx = rng.integers(0, e.shape[0], size=out.shape[1:])
+        for i in range(2):  # mode="clip" takes straight into ``out`` (no buffer)
+            np.take(cols[i] + shift[i], idx, out=out[i], mode="clip")
+
+    return fill
+
+
+def _gaussian_innovations(rng: np.random.Generator, root: np.ndarray) -> _Fill:
+    """``fill`` for :meth:`_Recursion.moments`: Gaussian, covariance ``root root'``."""
+
+    def fill(rows: np.ndarray, shift: np.ndarray, out: np.ndarray) -> None:
+        z = rng.standard_normal((2, out[0].size))
+        out[:] = (root @ z + shift[:, None]).reshape(out.shape)
+
+    return fill
 
 
 def _segments_rows(row_segment: np.ndarray) -> list[tuple[int, int]]:
@@ -1184,6 +1316,8 @@ class _Runner:
         rec = plan.rec
         est = plan.est
         self.block = None
+        #: (memory per replicate, most replicates) of one chunk, see _chunk_size
+        self.chunk_limits: tuple[int | None, int] = (None, 4096)
         if scheme == "residual":
             if est.name != "discrete":
                 raise EstimationError(
@@ -1191,6 +1325,7 @@ class _Runner:
                     "'discrete' estimator; use scheme 'blocks' or 'parametric'"
                 )
             self.rec_gen = _Recursion(plan)
+            self.chunk_limits = (self.rec_gen.bytes_per_replicate(), _MOST_RECURSIVE)
         elif scheme == "blocks":
             if not plan.regression:
                 raise EstimationError(
@@ -1218,6 +1353,7 @@ class _Runner:
         elif scheme == "parametric":
             if est.name == "discrete":
                 self.rec_gen = _Recursion(plan)
+                self.chunk_limits = (self.rec_gen.bytes_per_replicate(), _MOST_RECURSIVE)
                 notes.append(
                     "parametric: Gaussian one-step innovations with the residual covariance "
                     "(process and measurement noise lumped)"
@@ -1249,13 +1385,11 @@ class _Runner:
             g = c[0, 0] if plan.G else np.zeros(2)
             gen = self.rec_gen
             if self.scheme == "residual":
-                e = gen.residuals(F, g, plan.p + plan.G)
-                idx = rng.integers(0, gen.m, size=(gen.m, size), dtype=np.int32)
-                E = np.take(e, idx, axis=0)
+                fill = _resampled_innovations(rng, gen.residuals(F, g, plan.p + plan.G))
             else:
                 cov = np.asarray(plan.estimate.residual_cov, dtype=float)
-                E = rng.standard_normal((gen.m, size, 2)) @ _sqrt_psd(cov).T
-            return plan.refit_values(gen.run(F, g, E))
+                fill = _gaussian_innovations(rng, _sqrt_psd(cov))
+            return plan.refit_moments(gen.moments(F, g, size, fill))
         return plan.refit_values(self._simulate(rng, size, theta_model))
 
     def _simulate(self, rng: np.random.Generator, size: int, theta_model: np.ndarray) -> np.ndarray:
@@ -1361,13 +1495,21 @@ def _sqrt_psd(C: np.ndarray) -> np.ndarray:
     return V * np.sqrt(np.clip(w, 0.0, None))[None, :]
 
 
-def _chunk_size(rec: Recording, B: int, chunk: int | None) -> int:
+def _chunk_size(
+    rec: Recording, B: int, chunk: int | None, per: int | None = None, most: int = 4096
+) -> int:
+    """Replicates per chunk: ``chunk`` if given, else from the memory budget.
+
+    ``per`` is the memory of one replicate (default: about 8 arrays of (n, 2)
+    floats, for the schemes that materialise replicate series or weights).
+    """
     if chunk is not None:
         if int(chunk) < 1:
             raise EstimationError(f"chunk must be a positive integer, got {chunk!r}")
         return int(chunk)
-    per = max(rec.n_samples, 1) * 2 * 8 * 8  # ~8 arrays of (n, 2) floats per replicate
-    return int(max(16, min(B, 4096, CHUNK_BYTES // per)))
+    if per is None:
+        per = max(rec.n_samples, 1) * 2 * 8 * 8
+    return int(max(16, min(B, most, CHUNK_BYTES // per)))
 
 
 def _progress(total: int, quiet: bool, desc: str):
@@ -1536,7 +1678,7 @@ def bootstrap(
         if bias_correction is None
         else bool(bias_correction)
     )
-    size = _chunk_size(rec, B, chunk)
+    size = _chunk_size(rec, B, chunk, *runner.chunk_limits)
     rng1, rng2, _ = _seeds(seed, 3)
     regenerating = scheme in ("residual", "parametric")
     iters = max(1, int(bias_iterations)) if regenerating else 1

@@ -8,6 +8,7 @@ the trace-determinant plane are marked "common practice, no source".
 from __future__ import annotations
 
 import json
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -18,8 +19,10 @@ from fitdyn.asymptotic import asymptotic
 from fitdyn.bootstrap import (
     Uncertainty,
     _block_weights,
+    _gaussian_innovations,
     _Plan,
     _Runner,
+    _split_theta,
     block_length,
     bootstrap,
     choose_scheme,
@@ -222,6 +225,33 @@ def test_failed_replicates_in_a_real_bootstrap():
 
 
 # -- batch = loop ---------------------------------------------------------------------------
+def _given_innovations(E):
+    """``fill`` for _Recursion.moments that reads innovations E (m, B, 2) by design row."""
+
+    def fill(rows, shift, out):
+        out[:] = np.moveaxis(E[rows] + shift, -1, 0)
+
+    return fill
+
+
+def _regenerate_by_loop(rec, gen, F, g, E, eq=None):
+    """Replicate series (B, n, 2) by a Python loop over replicates, segments and steps."""
+    off = np.zeros(2) if eq is None else np.asarray(eq, float)
+    out = np.empty((E.shape[1],) + rec.values.shape)
+    for i in range(E.shape[1]):
+        x = rec.values - off
+        for s, t in rec.segment_bounds():
+            for k in range(s, t - 1):
+                x[k + 1] = F @ x[k] + g + E[gen.row_of[k], i]
+        out[i] = x + off
+    return out
+
+
+def _model(plan):
+    C, c = _split_theta(plan.theta_hat[None], plan.p, plan.G)
+    return C[0].T, (c[0, 0] if plan.G else np.zeros(2))
+
+
 def test_residual_batch_equals_loop():
     rec = _spiral_record(n=120, seed=5)
     est = DiscreteEstimator()
@@ -234,18 +264,102 @@ def test_residual_batch_equals_loop():
     g = e.extra["one_step_constant"]
     resid = gen.residuals(F, g, 3)
     E = resid[rng.integers(0, gen.m, size=(gen.m, 8))]
-    values = gen.run(F, g, E.copy())
-    # the recursion itself, replicate by replicate
-    for i in range(8):
-        x = rec.values.copy()
-        for k in range(rec.n_samples - 1):
-            x[k + 1] = F @ x[k] + g + E[k, i]
-        np.testing.assert_allclose(values[i], x, rtol=1e-12, atol=1e-12)
-    sysb = plan.systems(plan.refit_values(values))
+    sysb = plan.systems(plan.refit_moments(gen.moments(F, g, 8, _given_innovations(E))))
+    # the recursion replicate by replicate, then the point fit of each replicate series
+    values = _regenerate_by_loop(rec, gen, F, g, E)
     for i in range(8):
         one = est.fit(rec.with_values(values[i]))
         np.testing.assert_allclose(sysb.matrix[i], one.matrix, rtol=1e-9, atol=1e-12)
         np.testing.assert_allclose(sysb.offset[i], one.offset, rtol=1e-9, atol=1e-12)
+
+
+def _gappy_record():
+    # three trajectories of different lengths; gaps split the first and the third,
+    # leaving a lone sample (a segment with no pair)
+    times = [np.arange(40) * 0.1, np.arange(25) * 0.1, np.arange(31) * 0.1]
+    rec = simulate(SPIRAL, [1.0, 2.0], [[3.0, 0.0], [0.0, -2.0], [1.0, 1.0]], times,
+                   process_noise=0.02, seed=3)  # fmt: skip
+    new = np.diff(rec.trajectory) != 0
+    new |= np.isin(np.arange(1, rec.n_samples), [17, 70, 71])
+    return replace(rec, segment=np.concatenate([[0], np.cumsum(new)]))
+
+
+@pytest.mark.parametrize("known", [False, True])
+@pytest.mark.parametrize("block_states", [1, 50, None])
+def test_moment_path_equals_materialised_path(known, block_states, monkeypatch):
+    import fitdyn.bootstrap as bs
+
+    if block_states is not None:  # time blocks of one or a few steps
+        monkeypatch.setattr(bs, "_BLOCK_STATES", block_states)
+    rec = _gappy_record()
+    assert [t - s for s, t in rec.segment_bounds()] == [17, 23, 25, 5, 1, 25]
+    eq = np.array([1.0, 2.0]) if known else None
+    est = DiscreteEstimator()
+    plan = _Plan(rec, est, est.fit(rec, eq))
+    gen = _Runner(plan, "residual", None, []).rec_gen
+    assert gen.m == rec.n_samples - 6
+    F, g = _model(plan)
+    rng = np.random.default_rng(4)
+    E = gen.residuals(F, g, 3)[rng.integers(0, gen.m, size=(gen.m, 6))]
+    moment = plan.refit_moments(gen.moments(F, g, 6, _given_innovations(E)))
+    # the materialised path: replicate series, then the batched design and lstsq
+    materialised = plan.refit_values(_regenerate_by_loop(rec, gen, F, g, E, eq))
+    assert moment.shape == materialised.shape == (6, 4 if known else 6)
+    np.testing.assert_allclose(moment, materialised, rtol=1e-11, atol=1e-13)
+    # and the one-replicate case: the observed innovations give back the point fit
+    E0 = (rec.values[gen.first + 1] - (0 if eq is None else eq)) - (
+        (rec.values[gen.first] - (0 if eq is None else eq)) @ F.T + g
+    )
+    point = plan.refit_moments(gen.moments(F, g, 1, _given_innovations(E0[:, None, :])))
+    np.testing.assert_allclose(point[0], plan.theta_hat, rtol=1e-10, atol=1e-13)
+
+
+def test_known_equilibrium_and_chunks_in_a_real_bootstrap():
+    rec = _gappy_record()
+    eq = np.array([1.0, 2.0])
+    est = DiscreteEstimator()
+    e = est.fit(rec, eq)
+    kw = dict(replicates=150, seed=9, bias_correction=False, quiet=True)
+    u = bootstrap(rec, est, e, chunk=64, **kw)  # chunks of 64, 64 and 22
+    assert u.valid.sum() > 140
+    # a known equilibrium is kept in every replicate: b* = -A* x*
+    ok = u.valid
+    np.testing.assert_allclose(u.equilibria[ok], np.broadcast_to(eq, (ok.sum(), 2)), atol=1e-9)
+    np.testing.assert_array_equal(u.matrices, bootstrap(rec, est, e, chunk=64, **kw).matrices)
+    # another chunking draws other numbers but describes the same distribution
+    w = bootstrap(rec, est, e, **kw)
+    for name in ("trace", "determinant"):
+        (a, b), (c, d) = u.intervals[name], w.intervals[name]
+        assert abs(a - c) < 0.35 * (b - a) and abs(b - d) < 0.35 * (b - a)
+
+
+def test_parametric_discrete_has_gaussian_innovations_of_the_residual_covariance():
+    rec = _spiral_record(n=400, seed=8, q=0.05)
+    est = DiscreteEstimator()
+    e = est.fit(rec)
+    root = np.linalg.cholesky(e.residual_cov)
+    fill = _gaussian_innovations(np.random.default_rng(0), root)
+    out = np.empty((2, 500, 1, 200))
+    shift = np.array([0.3, -0.1])
+    fill(np.zeros((500, 1), int), shift, out)
+    z = out.reshape(2, -1).T
+    sd = np.sqrt(np.diag(e.residual_cov) / z.shape[0])
+    np.testing.assert_allclose(z.mean(axis=0), shift, atol=float(4 * sd.max()))
+    # sampling sd of a covariance entry is at most about var * sqrt(2 / N)
+    tol = 5 * np.sqrt(2 / z.shape[0]) * float(np.diag(e.residual_cov).max())
+    np.testing.assert_allclose(np.cov(z.T), e.residual_cov, rtol=0, atol=tol)
+    kw = dict(replicates=400, seed=3, bias_correction=False, quiet=True)
+    p = bootstrap(rec, est, e, scheme="parametric", **kw)
+    r = bootstrap(rec, est, e, scheme="residual", **kw)
+    assert p.scheme == "parametric" and p.valid.all()
+    np.testing.assert_array_equal(
+        p.matrices, bootstrap(rec, est, e, scheme="parametric", **kw).matrices
+    )
+    # the two schemes describe the same sampling variability
+    for name in ("trace", "determinant"):
+        wp = p.intervals[name][1] - p.intervals[name][0]
+        wr = r.intervals[name][1] - r.intervals[name][0]
+        assert 0.75 < wp / wr < 1.33
 
 
 def test_block_weights_equal_repeated_rows():

@@ -8,8 +8,15 @@ the point estimate is the one-replicate case of exactly the code the bootstrap r
 * row-resampling schemes (moving blocks, cases) pass replicate *weights* ``w`` of
   shape ``(B, m)`` (the multiplicity of each row in the resample) with the original
   ``Z`` and ``Y``;
-* regenerating schemes (recursive residual, parametric) pass replicate designs
-  ``Z`` of shape ``(B, m, p)`` and ``Y`` of shape ``(B, m, 2)``.
+* the parametric scheme of the derivative and integral fits passes replicate
+  designs ``Z`` of shape ``(B, m, p)`` and ``Y`` of shape ``(B, m, 2)``;
+* the recursive schemes of the one-step fit accumulate each replicate's sums while
+  regenerating its series and never form its design.
+
+The solve is split in two: :func:`moments` forms the within-group-centred,
+column-scaled normal equations of a design (:func:`moments_from_sums` forms the
+same from sums), and :func:`solve_moments` solves them; :func:`lstsq` is the two in
+a row.
 
 Estimators that are not linear regressions (the output-error trajectory fit)
 override :meth:`Estimator.fit` and :meth:`Estimator.fit_values`.
@@ -32,6 +39,10 @@ __all__ = [
     "Estimate",
     "SystemBatch",
     "Estimator",
+    "Moments",
+    "moments",
+    "moments_from_sums",
+    "solve_moments",
     "lstsq",
     "equilibrium_from",
 ]
@@ -136,17 +147,49 @@ def equilibrium_from(matrix: np.ndarray, offset: np.ndarray, rtol: float = 1e-9)
     return np.where(singular[..., None], np.nan, x)
 
 
-def lstsq(
+@dataclass(frozen=True)
+class Moments:
+    """Within-group-centred, column-scaled normal equations of a batch of regressions.
+
+    The least-squares problem ``min sum_i w_i || Y_i - Z_i C - c_{g(i)} ||^2`` only
+    needs these: with ``Zc``, ``Yc`` the rows centred by their (weighted) group means
+    and ``s`` the column scales, ``zz = (Zc / s)' W (Zc / s)`` and ``zy = (Zc / s)' W
+    Yc``.  :func:`moments` forms them from a design, :func:`moments_from_sums` from
+    sums accumulated elsewhere (the recursive bootstrap accumulates them while it
+    regenerates the series), and :func:`solve_moments` solves them.
+
+    Attributes
+    ----------
+    zz : ndarray, shape (B, p, p)
+        Scaled, centred ``Z' W Z``.
+    zy : ndarray, shape (B, p, k)
+        Scaled, centred ``Z' W Y``.
+    scale : ndarray, shape (B, 1, p)
+        Column scales ``s`` (root mean square of the centred columns; 1 for a zero
+        column).
+    zmean : ndarray, shape (B, G, p)
+        Group means of ``Z`` (``G = 0`` without intercepts).
+    ymean : ndarray, shape (B, G, k)
+        Group means of ``Y``.
+    """
+
+    zz: np.ndarray
+    zy: np.ndarray
+    scale: np.ndarray
+    zmean: np.ndarray
+    ymean: np.ndarray
+
+
+def moments(
     Z: np.ndarray,
     Y: np.ndarray,
     groups: np.ndarray | None = None,
     w: np.ndarray | None = None,
-) -> tuple[np.ndarray, np.ndarray]:
-    """Batched (weighted) least squares with optional per-group intercepts.
+) -> Moments:
+    """The normal equations of a (batched, weighted) design, centred and scaled.
 
-    Solves ``min sum_i w_i || Y_i - Z_i C - c_{g(i)} ||^2`` for every replicate.
-    Columns are centred within groups and scaled before the normal equations are
-    formed, which keeps them well conditioned for data far from the origin.
+    Columns are centred within groups and scaled before the products are formed,
+    which keeps the equations well conditioned for data far from the origin.
 
     Parameters
     ----------
@@ -159,10 +202,8 @@ def lstsq(
 
     Returns
     -------
-    C : ndarray, shape (B, p, k)
-        Slope coefficients (``B = 1`` when nothing is batched).
-    c : ndarray, shape (B, G, k)
-        Intercepts per group (``G = 0`` without groups).
+    Moments
+        With the batch size ``B`` of the largest input (1 when nothing is batched).
     """
     Z = np.asarray(Z, dtype=float)
     Y = np.asarray(Y, dtype=float)
@@ -200,29 +241,144 @@ def lstsq(
     else:
         G = 0
         Zc, Yc = Z, Y
+        zmean = np.zeros((1, 0, p))
+        ymean = np.zeros((1, 0, k))
 
     scale = np.sqrt(np.mean(Zc * Zc, axis=-2, keepdims=True))  # (B?, 1, p)
     scale = np.where(scale > 0, scale, 1.0)
     Zs = Zc / scale
     ZsT = np.swapaxes(Zs * W[..., None], -1, -2) if weighted else np.swapaxes(Zs, -1, -2)
-    ZtZ = ZsT @ Zs
-    ZtY = ZsT @ Yc
-    ZtZ = np.broadcast_to(ZtZ, (B, p, p))
-    ZtY = np.broadcast_to(ZtY, (B, p, k))
+    return Moments(
+        zz=np.broadcast_to(ZsT @ Zs, (B, p, p)),
+        zy=np.broadcast_to(ZsT @ Yc, (B, p, k)),
+        scale=np.broadcast_to(scale, (B, 1, p)),
+        zmean=np.broadcast_to(zmean, (B, G, p)),
+        ymean=np.broadcast_to(ymean, (B, G, k)),
+    )
+
+
+def moments_from_sums(
+    rows: np.ndarray | int,
+    szz: np.ndarray,
+    szy: np.ndarray,
+    sz: np.ndarray | None = None,
+    sy: np.ndarray | None = None,
+    origin_z: np.ndarray | None = None,
+    origin_y: np.ndarray | None = None,
+) -> Moments:
+    """The :class:`Moments` of unweighted rows given only their sums.
+
+    The sums may be taken about any fixed origin (``z - origin_z``, ``y -
+    origin_y``); an origin near the data (e.g. their mean) keeps the centring
+    ``sum z z' - sum z sum z' / n`` free of cancellation.  Equal to
+    :func:`moments` of the rows up to rounding.
+
+    Parameters
+    ----------
+    rows : int or int ndarray, shape (G,)
+        Number of rows (per intercept group when ``sz`` is given).
+    szz : ndarray, shape (B, p, p)
+        ``sum z z'`` over all rows.
+    szy : ndarray, shape (B, p, k)
+        ``sum z y'`` over all rows.
+    sz : ndarray, shape (B, G, p), optional
+        ``sum z`` per intercept group; ``None`` fits no intercept (the origins are
+        then ignored: the sums must be about the origin of the regression).
+    sy : ndarray, shape (B, G, k), optional
+        ``sum y`` per intercept group.
+    origin_z : ndarray, shape (p,), optional
+        The point the ``z`` sums are taken about (default 0).
+    origin_y : ndarray, shape (k,), optional
+        The point the ``y`` sums are taken about (default 0).
+
+    Returns
+    -------
+    Moments
+    """
+    szz = np.asarray(szz, dtype=float)
+    szy = np.asarray(szy, dtype=float)
+    B, p, k = szy.shape
+    n = np.asarray(rows, dtype=float).reshape(-1)
+    m = float(n.sum())
+    if sz is None:
+        zz, zy = szz, szy
+        zmean = np.zeros((B, 0, p))
+        ymean = np.zeros((B, 0, k))
+    else:
+        sz = np.asarray(sz, dtype=float)
+        sy = np.asarray(sy, dtype=float)
+        safe = np.where(n > 0, n, 1.0)[:, None]
+        zbar = sz / safe  # (B, G, p), about the origin
+        ybar = sy / safe
+        zz = szz - np.swapaxes(sz, -1, -2) @ zbar
+        zy = szy - np.swapaxes(sz, -1, -2) @ ybar
+        zmean = zbar + (0.0 if origin_z is None else np.asarray(origin_z, dtype=float))
+        ymean = ybar + (0.0 if origin_y is None else np.asarray(origin_y, dtype=float))
+    d = np.diagonal(zz, axis1=-2, axis2=-1)  # (B, p)
+    scale = np.sqrt(np.clip(d, 0.0, None) / max(m, 1.0))
+    scale = np.where(scale > 0, scale, 1.0)[:, None, :]  # (B, 1, p)
+    st = np.swapaxes(scale, -1, -2)  # (B, p, 1)
+    return Moments(zz=zz / (st * scale), zy=zy / st, scale=scale, zmean=zmean, ymean=ymean)
+
+
+def solve_moments(mom: Moments) -> tuple[np.ndarray, np.ndarray]:
+    """Slopes and intercepts from batched normal equations.
+
+    Parameters
+    ----------
+    mom : Moments
+
+    Returns
+    -------
+    C : ndarray, shape (B, p, k)
+        Slope coefficients; NaN for a replicate whose equations are singular.
+    c : ndarray, shape (B, G, k)
+        Intercepts per group (``G = 0`` without groups).
+    """
+    ZtZ, ZtY = mom.zz, mom.zy
+    B, p, k = ZtY.shape
     # a rank-deficient replicate (e.g. a resample of one repeated row) yields NaN
     # rather than an exception, and is flagged invalid downstream
     ok = np.linalg.cond(ZtZ) < 1e14
     Cs = np.full((B, p, k), np.nan)
     if ok.any():
         Cs[ok] = np.linalg.solve(ZtZ[ok], ZtY[ok])
-    C = Cs / np.broadcast_to(scale, (B, 1, p)).transpose(0, 2, 1)
-    if G:
-        c = np.broadcast_to(ymean, (B, G, k)) - np.einsum(
-            "bgp,bpk->bgk", np.broadcast_to(zmean, (B, G, p)), C
-        )
+    C = Cs / np.swapaxes(mom.scale, -1, -2)
+    if mom.zmean.shape[-2]:
+        c = mom.ymean - mom.zmean @ C
     else:
         c = np.zeros((B, 0, k))
     return C, c
+
+
+def lstsq(
+    Z: np.ndarray,
+    Y: np.ndarray,
+    groups: np.ndarray | None = None,
+    w: np.ndarray | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Batched (weighted) least squares with optional per-group intercepts.
+
+    Solves ``min sum_i w_i || Y_i - Z_i C - c_{g(i)} ||^2`` for every replicate:
+    :func:`solve_moments` of :func:`moments`.
+
+    Parameters
+    ----------
+    Z : ndarray, shape (m, p) or (B, m, p)
+    Y : ndarray, shape (m, k) or (B, m, k)
+    groups : int ndarray, shape (m,), or None
+        Intercept group of each row; ``None`` fits no intercept.
+    w : ndarray, shape (m,) or (B, m), optional
+        Non-negative row weights (resampling multiplicities).
+
+    Returns
+    -------
+    C : ndarray, shape (B, p, k)
+        Slope coefficients (``B = 1`` when nothing is batched).
+    c : ndarray, shape (B, G, k)
+        Intercepts per group (``G = 0`` without groups).
+    """
+    return solve_moments(moments(Z, Y, groups, w))
 
 
 @dataclass(frozen=True)
