@@ -21,6 +21,8 @@ short
     50 uniform samples, process noise; stable nodes and spirals.
 irregular
     150 samples at irregular times, measurement noise 5 %.
+irregular-process
+    300 samples at irregular times, process noise.
 process
     300 uniform samples, process noise.
 measurement
@@ -78,6 +80,11 @@ CONFIGS: dict[str, list[tuple[str, str, bool]]] = {
     "irregular": [
         ("trajectory", "parametric", False),
         ("integral", "blocks", False),
+    ],
+    "irregular-process": [
+        ("derivative", "blocks", False),
+        ("integral", "blocks", False),
+        ("derivative", "parametric", False),
     ],
     "process": [
         ("discrete", "residual", True),
@@ -149,8 +156,9 @@ def _dataset(scenario: str, index: int, seed: int):
     slow = float(np.min(np.abs(lam.real)))
     xs = rng.normal(0, 2.0, 2)
     traj = 6 if scenario == "trajectories" else 1
-    n = {"short": 50, "irregular": 150, "process": 300, "measurement": 200,
-         "trajectories": 40, "near-center": 300, "mixed": 300}[scenario]  # fmt: skip
+    n = {"short": 50, "irregular": 150, "irregular-process": 300, "process": 300,
+         "measurement": 200, "trajectories": 40, "near-center": 300,
+         "mixed": 300}[scenario]  # fmt: skip
     # span: about three slow time constants (spirals: at least three periods)
     span = 3.0 / max(slow, 0.05)
     if np.any(lam.imag != 0):
@@ -158,7 +166,7 @@ def _dataset(scenario: str, index: int, seed: int):
     span = min(span, 60.0)
     if scenario in ("short", "trajectories"):
         span = min(span, 25.0)
-    if scenario == "irregular":
+    if scenario in ("irregular", "irregular-process"):
         t = np.sort(rng.uniform(0, span, n))
         t[0] = 0.0
     else:
@@ -166,7 +174,9 @@ def _dataset(scenario: str, index: int, seed: int):
     x0 = xs + rng.normal(0, 3.0, (traj, 2))
     clean = simulate(A, xs, x0, t, trajectories=traj)
     sd = clean.values.std(axis=0)
-    process = scenario in ("short", "process", "trajectories", "near-center", "mixed")
+    process = scenario in (
+        "short", "process", "trajectories", "near-center", "mixed", "irregular-process"
+    )  # fmt: skip
     Q = np.diag((PROCESS_PCT / 100 * sd) ** 2 * rho) if process else None
     meas = MEASURE_PCT / 100 * sd if scenario in ("irregular", "measurement") else None
     if scenario == "mixed":  # sensor noise twice the one-step process innovation
