@@ -59,7 +59,7 @@ import argparse
 import os
 import time
 import zlib
-from collections import defaultdict
+from collections import Counter, defaultdict
 from multiprocessing import get_context
 
 import numpy as np
@@ -67,11 +67,12 @@ import numpy as np
 from fitdyn import linalg2
 from fitdyn.bootstrap import bootstrap
 from fitdyn.errors import FitdynError
-from fitdyn.estimators import get_estimator
+from fitdyn.estimators import estimate, get_estimator
 from fitdyn.simulate import simulate
 
-# (estimator, scheme, bias correction) configurations per scenario
-CONFIGS: dict[str, list[tuple[str, str, bool]]] = {
+# (estimator, scheme, bias correction) configurations per scenario; every scenario
+# also runs ("auto", "auto", None) first: what fit() does by default
+_LISTED: dict[str, list[tuple[str, str, bool]]] = {
     "short": [
         ("discrete", "residual", True),
         ("discrete", "residual", False),
@@ -112,6 +113,10 @@ CONFIGS: dict[str, list[tuple[str, str, bool]]] = {
         ("discrete", "residual", False),
         ("discrete", "parametric", True),
     ],
+}
+
+CONFIGS: dict[str, list[tuple[str, str, bool | None]]] = {
+    name: [("auto", "auto", None), *rows] for name, rows in _LISTED.items()
 }
 
 #: replicates per dataset for the nonlinear (slow) trajectory fit
@@ -197,9 +202,14 @@ def _job(args):
     for k, (method, scheme, bc) in enumerate(CONFIGS[scenario]):
         row = {"config": k, "stable": maxre < 0}
         try:
-            est = get_estimator(method)
-            e = est.fit(rec)
-            reps = min(replicates, TRAJECTORY_REPLICATES) if method == "trajectory" else replicates
+            if method == "auto":
+                e, est = estimate(rec, "auto")
+                row["chosen"] = est.name
+            else:
+                est = get_estimator(method)
+                e = est.fit(rec)
+            slow = est.name == "trajectory"
+            reps = min(replicates, TRAJECTORY_REPLICATES) if slow else replicates
             u = bootstrap(rec, est, e, replicates=reps, seed=[seed, index, k],
                           scheme=scheme, bias_correction=bc, quiet=True)  # fmt: skip
             iv = u.intervals
@@ -243,8 +253,8 @@ def main() -> None:
     print(f"coverage of nominal 95 % intervals, {N} datasets per scenario, "
           f"{args.replicates} replicates each ({TRAJECTORY_REPLICATES} for the trajectory fit); "
           f"{wall:.0f} s on {args.workers} workers")  # fmt: skip
-    print("first row of each scenario: the configuration fit() uses by default there")
-    head = (f"{'scenario':<13}{'estimator':<14}{'scheme':<11}{'bias':<6}{'trace':>7}"
+    print("first row of each scenario: auto, what fit() does by default (its choices below)")
+    head = (f"{'scenario':<18}{'estimator':<14}{'scheme':<11}{'bias':<6}{'trace':>7}"
             f"{'det':>7}{'maxre':>7}{'width':>8}{'Brier':>8}{'failed':>8}")  # fmt: skip
     print(head)
     print("-" * len(head))
@@ -259,9 +269,14 @@ def main() -> None:
             ok = np.isfinite(ps)
             brier = float(np.mean((ps[ok] - st[ok]) ** 2)) if ok.any() else np.nan
             nf = sum(r["failed"] for r in rows)
-            print(f"{s:<13}{method:<14}{scheme:<11}{'yes' if bc else 'no':<6}"
+            bias = "dflt" if bc is None else ("yes" if bc else "no")
+            print(f"{s:<18}{method:<14}{scheme:<11}{bias:<6}"
                   f"{cov['trace']:>7.3f}{cov['det']:>7.3f}{cov['maxre']:>7.3f}"
                   f"{width:>8.3f}{brier:>8.3f}{nf:>8d}")  # fmt: skip
+            if method == "auto":
+                picks = Counter(r.get("chosen", "failed") for r in rows)
+                print(f"{'':<18}  auto chose: "
+                      + ", ".join(f"{m} {c}" for m, c in picks.most_common()))  # fmt: skip
             for p, y in zip(ps[ok], st[ok], strict=True):
                 pooled[(method, scheme, bc)].append((p, bool(y)))
 
@@ -279,7 +294,8 @@ def main() -> None:
             for i in range(len(edges) - 1):
                 m = (p >= edges[i]) & (p < edges[i + 1])
                 cells.append(f"{y[m].mean():.2f} ({m.sum()})" if m.any() else "-")
-            name = f"{key[-3]}/{key[-2]}/{'bias' if key[-1] else 'plain'}"
+            bias = "default" if key[-1] is None else ("bias" if key[-1] else "plain")
+            name = f"{key[-3]}/{key[-2]}/{bias}"
             if len(key) == 4:
                 name = f"{key[0]}: {name}"
             brier = float(np.mean((p - y) ** 2))

@@ -1358,6 +1358,13 @@ class _Runner:
                     "parametric: Gaussian one-step innovations with the residual covariance "
                     "(process and measurement noise lumped)"
                 )
+            elif not plan.regression and _model_noise(plan.estimate) is not None:
+                Q, R = _model_noise(plan.estimate)  # type: ignore[misc]
+                notes.append(
+                    "parametric: process noise Q = "
+                    f"{np.round(Q, 6).tolist()} and measurement noise R = "
+                    f"{np.round(R, 6).tolist()} of the fitted model"
+                )
             elif not plan.regression:
                 notes.append(
                     "parametric: measurement noise with the residual covariance, no "
@@ -1409,6 +1416,8 @@ class _Runner:
                 self.noise = (Q, R)
                 self.notes.append(note)
             Q, R = self.noise
+        elif _model_noise(plan.estimate) is not None:
+            Q, R = _model_noise(plan.estimate)  # type: ignore[misc]
         else:
             Q = None
             R = np.asarray(plan.estimate.residual_cov, dtype=float)
@@ -1442,6 +1451,18 @@ class _Runner:
             except FitdynError:
                 pass
         return out
+
+
+def _model_noise(estimate: Estimate) -> tuple[np.ndarray, np.ndarray] | None:
+    """``(Q, R)`` of estimators that fit both noises themselves (``extra`` keys
+    ``process_noise`` and ``measurement_cov``), else None."""
+    extra = estimate.extra or {}
+    if "process_noise" not in extra:
+        return None
+    Q = np.asarray(extra["process_noise"], dtype=float).reshape(2, 2)
+    R = extra.get("measurement_cov")
+    R = np.zeros((2, 2)) if R is None else np.asarray(R, dtype=float).reshape(2, 2)
+    return Q, R
 
 
 def _initial_states(plan: _Plan, rec: Recording) -> np.ndarray:
