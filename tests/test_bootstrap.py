@@ -546,3 +546,21 @@ def test_uncertainty_is_frozen():
     assert isinstance(u, Uncertainty)
     with pytest.raises(AttributeError):
         u.p_stable = 0.5  # type: ignore[misc]
+
+
+def test_parametric_uses_the_noise_an_estimator_fitted():
+    # an estimator that reports its own process and measurement noise (extra keys
+    # process_noise, measurement_cov) gets replicates simulated with both
+    from dataclasses import replace
+
+    rec = simulate(SPIRAL, [1, 2], [3, 0], np.arange(60) * 0.25, measurement_noise=0.05, seed=6)
+    est = get_estimator("trajectory")
+    e = est.fit(rec)
+    plain = bootstrap(rec, est, e, replicates=12, seed=1, quiet=True)
+    Q = np.diag([0.05, 0.05])
+    noisy = replace(e, extra={**e.extra, "process_noise": Q, "measurement_cov": e.residual_cov})
+    u = bootstrap(rec, est, noisy, replicates=12, seed=1, quiet=True)
+    assert any("process noise Q" in n for n in u.notes)
+    assert not any("process noise Q" in n for n in plain.notes)
+    spread = lambda v: float(np.nanstd(np.trace(v.matrices, axis1=1, axis2=2)))  # noqa: E731
+    assert spread(u) > 1.5 * spread(plain)
