@@ -36,6 +36,7 @@ FINE = {
     "discrete": 201,
     "instrumental": 201,
     "trajectory": 201,
+    "kalman": 201,
     "auto": 8001,
 }
 
@@ -47,7 +48,9 @@ BATCH_SETTINGS = {"derivative": {"window": 21}}
 def _have(name: str) -> bool:
     if name == "auto":
         return True
-    module = {"discrete": "fitdyn.estimators.discrete"}.get(name, f"fitdyn.estimators.{name}")
+    from fitdyn.estimators import _REGISTRY
+
+    module = _REGISTRY[name][0] if name in _REGISTRY else f"fitdyn.estimators.{name}"
     return importlib.util.find_spec(module) is not None
 
 
@@ -265,7 +268,10 @@ def test_batch_equals_loop(name):
     batch = estimator.fit_values(rec, V)
     assert batch.matrix.shape == (3, 2, 2) and batch.offset.shape == (3, 2)
     assert batch.valid.shape == (3,) and batch.valid.all()
-    tol = 1e-5 if estimator.name == "trajectory" else 1e-9
+    # iterative fits agree to their convergence precision: the state-space fit here
+    # has its process noise on the zero bound, where rounding in the score (amplified
+    # by the inverse of the tiny noise covariance) limits it to about 1e-8
+    tol = {"trajectory": 1e-5, "kalman": 1e-7}.get(estimator.name, 1e-9)
     for k in range(3):
         single = estimator.fit_values(rec, V[k : k + 1])
         assert rel(single.matrix[0], batch.matrix[k]) < tol

@@ -33,6 +33,7 @@ _REGISTRY: dict[str, tuple[str, str]] = {
     "discrete": ("fitdyn.estimators.discrete", "DiscreteEstimator"),
     "instrumental": ("fitdyn.estimators.instrumental", "InstrumentalEstimator"),
     "trajectory": ("fitdyn.estimators.trajectory", "TrajectoryEstimator"),
+    "kalman": ("fitdyn.estimators.statespace", "KalmanEstimator"),
 }
 
 #: Names accepted by :func:`estimate` (``"auto"`` included).
