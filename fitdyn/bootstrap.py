@@ -1023,9 +1023,7 @@ class _Plan:
         )
         self.regression = bool(estimator.is_regression)
         self.failure_label = (
-            "no real logarithm"
-            if estimator.name in ("discrete", "instrumental", "kalman")
-            else "failed fit"
+            "no real logarithm" if estimator.name in ("discrete", "instrumental") else "failed fit"
         )
         if self.regression:
             self.design = estimator.design(rec, self.eq)

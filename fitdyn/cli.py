@@ -14,6 +14,7 @@ from typing import Any
 
 from fitdyn import __version__
 from fitdyn.errors import FitdynError
+from fitdyn.estimators import METHODS
 
 __all__ = ["main", "build_parser"]
 
@@ -118,7 +119,7 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument(
         "--method",
         default="auto",
-        choices=("auto", "derivative", "integral", "discrete", "trajectory"),
+        choices=METHODS,
         help="estimator (default auto: chosen from the data)",
     )
     g.add_argument("--equilibrium", metavar="X,Y", help="known equilibrium (default: estimate)")

@@ -96,6 +96,21 @@ def test_fit_prints_summary_and_json(tmp_path, capsys):
     assert re == pytest.approx([-0.5, -0.1], rel=1e-3)
 
 
+@pytest.mark.parametrize("method", ["discrete", "instrumental", "kalman"])
+def test_every_registered_method_is_an_option(tmp_path, capsys, method):
+    # the chamber demo: uniform steps, a stable node (data_demo/README.md)
+    out_json = tmp_path / "fit.json"
+    code, out, err = run(
+        ["fit", DEMO / "chamber_cooling.csv", "--method", method, "--gap-factor", "1.5",
+         "--outliers", "drop", "--json", out_json, "--quiet"],
+        capsys,
+    )  # fmt: skip
+    assert code == 0, err
+    d = json.loads(out_json.read_text())
+    assert d["method"] == method
+    assert d["classification"]["label"] == "stable node"
+
+
 def test_simulate_writes_a_readable_csv(tmp_path, capsys):
     out = tmp_path / "sim.csv"
     code, _, err = run(
