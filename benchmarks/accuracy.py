@@ -79,6 +79,8 @@ METHODS = (
     "derivative-spline",
     "integral",
     "discrete",
+    "instrumental",
+    "kalman",
     "trajectory",
     "auto",
 )
@@ -109,6 +111,7 @@ CONDITIONS: tuple[Condition, ...] = (
     Condition("proc 20 %, uniform, 5 traj", process=20, trajectories=5),
     Condition("proc 20 %, uniform, 5 traj x 200", process=20, trajectories=5, samples=1000),
     Condition("proc 10 % + meas 2 %, uniform, 1 traj", measurement=2, process=10),
+    Condition("proc 20 % + meas 5 %, uniform, 1 traj, 500", measurement=5, process=20, samples=500),
 )
 
 TARGET = CONDITIONS[1]

@@ -15,18 +15,24 @@ least-squares estimate (Sargan, Econometrica 1958; Soederstroem & Stoica,
 
 with ``Z = [y_k]``, ``Y = [y_{k+1}]``, ``H = [y_{k-1}, ..., y_{k-L}]`` (all centred,
 the constant being in both sets) is consistent under process noise, measurement
-noise or both.  With ``L = 2`` lags (the default) the equations are over-identified,
-which gives the estimate finite moments; the price is a larger variance than least
-squares when there is no measurement noise.  The map to ``A`` and ``b`` is the
-discrete estimator's (principal logarithm, same refusals and warnings).
+noise or both.  The map to ``A`` and ``b`` is the discrete estimator's (principal
+logarithm, same refusals and warnings).
 
-Assumptions: a uniform step within segments, white measurement noise (a coloured
-sensor noise needs deeper lags, setting ``lags``), and instruments that are not
-weak -- the fit warns when the smallest canonical correlation between instruments
-and regressors is low (the estimate is then erratic).  The error ``u`` is a moving
-average of order one, so the regression rows are resampled in blocks (the
-default scheme) or regenerated from the fitted state-space model (``parametric``);
-the recursive residual scheme, which assumes white innovations, does not apply.
+The default is one lag (``L = 1``, just identified).  More lags give intervals
+about a fifth narrower, but in the coverage benchmark's mixed-noise scenario (1,000
+datasets) their nominal 95 % intervals for the determinant covered the truth only
+0.92-0.93 of the time against 0.94 with one lag (trace 0.93-0.94 against 0.95), so
+calibration decides.  Either way the variance is larger than that of least squares
+when there is no measurement noise.
+
+Assumptions: a uniform step within segments, white measurement noise (coloured
+sensor noise makes the nearest samples invalid instruments), and instruments that
+are not weak -- the fit warns when the smallest canonical correlation between
+instruments and regressors is low (the estimate is then erratic).  The error ``u``
+is a moving average of order one, so residuals cannot be redrawn independently:
+the default scheme regenerates whole records from the fitted model with process
+and measurement noise estimated from the one-step errors (``parametric``, bias
+corrected); moving blocks of rows (``blocks``) are the alternative.
 """
 
 from __future__ import annotations
@@ -158,10 +164,11 @@ class InstrumentalEstimator(DiscreteEstimator):
 
     Parameters
     ----------
-    lags : int, default 2
+    lags : int, default 1
         Number of earlier samples used as instruments (``y_{k-1} ... y_{k-lags}``).
-        One gives the just-identified estimate (no finite moments in small samples);
-        more lags cost rows at the start of every segment.
+        One gives the just-identified estimate, whose bootstrap intervals are the
+        calibrated ones (see the module notes); more lags give sharper but slightly
+        overconfident intervals and cost rows at the start of every segment.
     jitter_tolerance : float, default 0.01
         Largest relative deviation of a step from the median step.
 
@@ -175,7 +182,7 @@ class InstrumentalEstimator(DiscreteEstimator):
 
     name: ClassVar[str] = "instrumental"
 
-    def __init__(self, lags: int = 2, jitter_tolerance: float = 0.01, **unknown: Any) -> None:
+    def __init__(self, lags: int = 1, jitter_tolerance: float = 0.01, **unknown: Any) -> None:
         from fitdyn.estimators.derivative import reject_unknown
 
         reject_unknown(self.name, unknown, ("lags", "jitter_tolerance"))
