@@ -23,6 +23,9 @@ irregular
     150 samples at irregular times, measurement noise 5 %.
 irregular-process
     300 samples at irregular times, process noise.
+irregular-mixed
+    300 samples at irregular times, process and measurement noise as in "mixed"
+    (the innovation over the mean step).
 process
     300 uniform samples, process noise.
 measurement
@@ -83,9 +86,16 @@ _LISTED: dict[str, list[tuple[str, str, bool]]] = {
         ("integral", "blocks", False),
     ],
     "irregular-process": [
+        ("prediction", "parametric", True),
+        ("prediction", "parametric", False),
         ("derivative", "blocks", False),
         ("integral", "blocks", False),
         ("derivative", "parametric", False),
+    ],
+    "irregular-mixed": [
+        ("derivative", "blocks", False),
+        ("prediction", "parametric", True),
+        ("integral", "blocks", False),
     ],
     "process": [
         ("discrete", "residual", True),
@@ -165,7 +175,8 @@ def _dataset(scenario: str, index: int, seed: int):
     slow = float(np.min(np.abs(lam.real)))
     xs = rng.normal(0, 2.0, 2)
     traj = 6 if scenario == "trajectories" else 1
-    n = {"short": 50, "irregular": 150, "irregular-process": 300, "process": 300,
+    n = {"short": 50, "irregular": 150, "irregular-process": 300, "irregular-mixed": 300,
+         "process": 300,
          "measurement": 200, "trajectories": 40, "near-center": 300,
          "mixed": 300}[scenario]  # fmt: skip
     # span: about three slow time constants (spirals: at least three periods)
@@ -175,7 +186,7 @@ def _dataset(scenario: str, index: int, seed: int):
     span = min(span, 60.0)
     if scenario in ("short", "trajectories"):
         span = min(span, 25.0)
-    if scenario in ("irregular", "irregular-process"):
+    if scenario in ("irregular", "irregular-process", "irregular-mixed"):
         t = np.sort(rng.uniform(0, span, n))
         t[0] = 0.0
     else:
@@ -184,13 +195,14 @@ def _dataset(scenario: str, index: int, seed: int):
     clean = simulate(A, xs, x0, t, trajectories=traj)
     sd = clean.values.std(axis=0)
     process = scenario in (
-        "short", "process", "trajectories", "near-center", "mixed", "irregular-process"
+        "short", "process", "trajectories", "near-center", "mixed", "irregular-process",
+        "irregular-mixed",
     )  # fmt: skip
     Q = np.diag((PROCESS_PCT / 100 * sd) ** 2 * rho) if process else None
     meas = MEASURE_PCT / 100 * sd if scenario in ("irregular", "measurement") else None
-    if scenario == "mixed":  # sensor noise twice the one-step process innovation
-        assert Q is not None
-        meas = MIXED_RATIO * np.sqrt(np.diag(Q) * (t[1] - t[0]))
+    if scenario in ("mixed", "irregular-mixed"):  # sensor noise twice the innovation
+        assert Q is not None  # over the mean step
+        meas = MIXED_RATIO * np.sqrt(np.diag(Q) * (t[-1] - t[0]) / (t.size - 1))
     rec = simulate(A, xs, x0, t, process_noise=Q, measurement_noise=meas, trajectories=traj,
                    seed=rng)  # fmt: skip
     return A, rec

@@ -1607,13 +1607,20 @@ def default_bias_correction(scheme: str, estimator: Estimator) -> bool:
     slow side (discrete: coverage 0.77-0.85 instead of 0.95, 0.93-0.96 with it;
     instrumental under process plus measurement noise: about 0.85 without,
     0.93-0.95 with it), and for the Kalman-filter fit's parametric scheme
-    (0.78-0.85 without, 0.90-0.93 with it in a 60-dataset check).  Off elsewhere:
+    (0.78-0.85 without, 0.90-0.93 with it in a 60-dataset check), and for the
+    prediction-error fit on irregular steps (0.80-0.83 without, 0.93-0.95 with
+    it).  Off elsewhere:
     the row schemes cannot move the data-generating process, and for the other
     estimators the benchmark shows no gain worth the doubled work.
     """
     if scheme == "residual":
         return estimator.name == "discrete"
-    return scheme == "parametric" and estimator.name in ("discrete", "instrumental", "kalman")
+    return scheme == "parametric" and estimator.name in (
+        "discrete",
+        "instrumental",
+        "kalman",
+        "prediction",
+    )
 
 
 def bootstrap(

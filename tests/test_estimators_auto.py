@@ -48,12 +48,25 @@ def test_measurement_on_top_of_process_noise_avoids_the_one_step_fit():
     assert not any("could not be used" in w for w in est.warnings)
 
 
-def test_irregular_process_noise_chooses_the_derivative_regression():
+def test_irregular_process_noise_chooses_the_prediction_error_fit():
     t = np.sort(np.r_[0.0, np.random.default_rng(4).uniform(0, 12, 199)])
     rec = fitdyn.simulate(A, X_STAR, [4.0, 1.0], t, process_noise=0.05, seed=4)
     est, _ = choose_and_fit(rec)
-    assert est.method == "derivative"
+    assert est.method == "prediction"
     assert any("irregular steps" in n for n in auto_notes(est))
+
+
+def test_irregular_mixed_noise_falls_back_to_the_derivative_regression():
+    # no instrumental fit on irregular steps: derivative regression, with the warning
+    t = np.sort(np.r_[0.0, np.random.default_rng(5).uniform(0, 140, 279)])
+    rec = fitdyn.simulate(
+        np.array([[-0.35, 0.30], [0.15, -0.20]]), [0.0, 0.0], [8.0, 3.0], t,
+        process_noise=[[0.002, 0.0], [0.0, 0.0005]], measurement_noise=[0.1, 0.06], seed=5,
+    )  # fmt: skip
+    est, _ = choose_and_fit(rec)
+    assert est.method == "derivative"
+    assert any("measurement noise as well" in n for n in auto_notes(est))
+    assert any("needs uniform steps" in w for w in est.warnings)
 
 
 def test_discrete_refusal_falls_back(monkeypatch):

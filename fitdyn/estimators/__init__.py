@@ -34,6 +34,7 @@ _REGISTRY: dict[str, tuple[str, str]] = {
     "instrumental": ("fitdyn.estimators.instrumental", "InstrumentalEstimator"),
     "trajectory": ("fitdyn.estimators.trajectory", "TrajectoryEstimator"),
     "kalman": ("fitdyn.estimators.statespace", "KalmanEstimator"),
+    "prediction": ("fitdyn.estimators.prediction", "PredictionEstimator"),
 }
 
 #: Names accepted by :func:`estimate` (``"auto"`` included).

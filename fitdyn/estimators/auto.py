@@ -14,14 +14,15 @@ The policy (chosen with ``benchmarks/accuracy.py``; see its table):
    everything but independent measurement errors.  Process noise leaves slow
    wander in these residuals; the output-error fit would then report intervals
    far too narrow, so it is not used.
-3. Otherwise process noise matters.  On uniform steps use the one-step
-   ``discrete`` fit (exact for the sampled process) -- unless its one-step
-   residuals are negatively autocorrelated, the signature of measurement noise on
-   top of the process noise, which biases least squares on the samples; then use
-   the ``instrumental`` one-step fit (earlier samples as instruments, consistent
-   under both noises; its bias-corrected parametric bootstrap is the calibrated
-   one in the benchmark's "mixed" scenario).  On irregular steps, or when those
-   fits refuse (no real logarithm), use the ``derivative`` regression with
+3. Otherwise process noise matters: use a one-step fit, exact for the sampled
+   process -- the ``discrete`` fit on uniform steps, the ``prediction`` (one-step
+   prediction-error) fit on irregular ones.  If its one-step residuals are
+   negatively autocorrelated, the signature of measurement noise on top of the
+   process noise, which biases one-step fits on the samples, use instead the
+   ``instrumental`` one-step fit (earlier samples as instruments, consistent under
+   both noises; its bias-corrected parametric bootstrap is the calibrated one in
+   the benchmark's "mixed" scenario) on uniform steps, and on irregular steps, or
+   when those fits refuse (no real logarithm), the ``derivative`` regression with
    smoothed states, which averages the measurement noise and has no
    discretisation of its own to get wrong.
 4. If that fails too (too few samples per segment), keep the integral form.
@@ -137,10 +138,18 @@ def _make(method: str, settings: dict[str, Any]) -> tuple[Estimator, list[str]]:
         "discrete": ("jitter_tolerance",),
         "instrumental": ("jitter_tolerance", "lags"),
         "trajectory": ("start", "weights", "noise_sd", "frequencies", "max_nfev", "tol"),
+        "prediction": ("weighting", "frequencies", "max_iterations", "xtol"),
     }[method]
     use = {k: v for k, v in settings.items() if k in allowed}
     ignored = sorted(k for k in settings if k not in allowed)
     return get_estimator(method, **use), ignored
+
+
+def _pairs(rec: Recording) -> tuple[np.ndarray, np.ndarray]:
+    """Segment and step of each pair of consecutive samples within a segment."""
+    seg = np.asarray(rec.segment)
+    same = seg[1:] == seg[:-1]
+    return seg[1:][same], np.diff(rec.times)[same]
 
 
 def _instrumental(
@@ -252,35 +261,42 @@ def choose_and_fit(
                 )
                 process = True
     mixed_noise = False
-    if chosen is None and samp["uniform"]:
-        disc, ignored_d = _make("discrete", settings)
+    if chosen is None:
+        # the one-step fit: exact for the sampled process on any steps
+        name = "discrete" if samp["uniform"] else "prediction"
+        what = "discrete fit" if samp["uniform"] else "prediction-error fit"
+        one, ignored_o = _make(name, settings)
         try:
-            est_d = disc.fit(rec, eq)
+            est_o = one.fit(rec, eq)
         except (NoRealLogarithmError, SamplingError) as exc:
-            reasons.append(f"auto: discrete fit refused ({exc})")
+            reasons.append(f"auto: one-step {what} refused ({exc})")
         except (ImportError, FitdynError) as exc:
-            reasons.append(f"auto: discrete fit unavailable ({exc})")
+            reasons.append(f"auto: one-step {what} unavailable ({exc})")
         else:
-            rows = disc.design(rec, eq).row_segment
-            lag_d = residual_lag1(est_d.residuals, rows)
-            limit = -max(0.1, 2.5 / np.sqrt(max(est_d.n_used, 1)))
-            if np.isfinite(lag_d) and lag_d < limit:
+            seg_o, h_o = _pairs(rec)
+            # raw one-step errors (the prediction-error fit reports them divided by
+            # sqrt(h)): measurement noise shows as negative lag-1 correlation in them
+            raw = np.asarray(est_o.residuals, dtype=float)
+            if name == "prediction" and raw.shape[0] == h_o.size:
+                raw = raw * np.sqrt(h_o)[:, None]
+            lag_o = residual_lag1(raw, seg_o)
+            limit = -max(0.1, 2.5 / np.sqrt(max(est_o.n_used, 1)))
+            if np.isfinite(lag_o) and lag_o < limit:
                 reasons.append(
-                    f"auto: one-step residuals negatively autocorrelated (lag-1 {lag_d:.2f} "
-                    f"< {limit:.2f}) -> measurement noise as well; least squares on the "
-                    "samples is attenuated, one-step fit not used"
+                    f"auto: one-step residuals negatively autocorrelated (lag-1 {lag_o:.2f} "
+                    f"< {limit:.2f}) -> measurement noise as well; a one-step fit on the "
+                    "samples is attenuated, not used"
                 )
-                if process:
+                if process and samp["uniform"]:
                     chosen, ignored = _instrumental(rec, eq, settings, reasons)
-                    mixed_noise = chosen is None
+                mixed_noise = process and chosen is None
             else:
+                steps_text = "uniform steps" if samp["uniform"] else "irregular steps"
                 reasons.append(
-                    f"auto: uniform steps, one-step residuals close to white (lag-1 "
-                    f"{lag_d:.2f}) -> one-step discrete fit"
+                    f"auto: {steps_text}, one-step residuals close to white (lag-1 "
+                    f"{lag_o:.2f}) -> one-step {what}"
                 )
-                chosen, ignored = (est_d, disc), ignored_d
-    elif chosen is None:
-        reasons.append("auto: irregular steps -> no one-step discrete fit")
+                chosen, ignored = (est_o, one), ignored_o
     if chosen is None:
         deriv, ignored_v = _make("derivative", settings)
         try:
@@ -303,9 +319,10 @@ def choose_and_fit(
     if mixed_noise:
         warns += (
             "both process noise and measurement noise appear to be present, and the "
-            "instrumental-variable fit that handles that mix could not be used here; in "
-            "simulations of such data the derivative regression's nominal 95 % intervals "
-            "covered the truth only 0.55-0.9 of the time: treat them as too narrow",
+            "instrumental-variable fit that handles that mix could not be used here (it "
+            "needs uniform steps); in simulations of such data the derivative "
+            "regression's nominal 95 % intervals covered the truth only 0.55-0.9 of the "
+            "time: treat them as too narrow",
         )
     est = replace(
         est, notes=tuple(reasons) + tuple(est.notes), settings=new_settings, warnings=warns
