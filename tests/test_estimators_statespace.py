@@ -27,8 +27,8 @@ from fitdyn.estimators.statespace import (
     log_likelihood,
     smooth,
 )
-from fitdyn.recording import KEPT, CleaningLog, Recording, RowFate
 from fitdyn.simulate import simulate
+from tests.test_estimators_discrete import make_recording
 
 A_SPIRAL = np.array([[-0.3, 1.2], [-1.0, -0.2]])
 X_STAR = np.array([2.0, -1.0])
@@ -40,30 +40,6 @@ F1 = np.array([[0.95, 0.1], [-0.08, 0.97]])
 G1 = np.array([0.1, -0.05])
 QD1 = np.array([[0.02, 0.005], [0.005, 0.01]])
 R1 = np.diag([0.03, 0.05])
-
-
-def make_recording(values, times=None, segment=None, trajectory=None, source="test"):
-    """A Recording straight from arrays (every sample kept)."""
-    values = np.asarray(values, dtype=float)
-    n = values.shape[0]
-    times = np.arange(n, dtype=float) if times is None else np.asarray(times, dtype=float)
-    segment = np.zeros(n, dtype=int) if segment is None else np.asarray(segment)
-    trajectory = segment.copy() if trajectory is None else np.asarray(trajectory)
-    log = CleaningLog(source, tuple(RowFate(i, KEPT) for i in range(n)))
-    return Recording(
-        times=times,
-        values=values,
-        trajectory=trajectory,
-        segment=segment,
-        outlier=np.zeros(n, dtype=bool),
-        source_rows=np.arange(n),
-        channels=("x1", "x2"),
-        units=(None, None),
-        time_unit=None,
-        trajectory_names=tuple(str(k) for k in range(int(trajectory.max()) + 1)),
-        log=log,
-        source=source,
-    )
 
 
 def one_step_series(n=80, seed=0):

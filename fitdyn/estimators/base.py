@@ -39,6 +39,7 @@ __all__ = [
     "Estimate",
     "SystemBatch",
     "Estimator",
+    "NonlinearEstimator",
     "Moments",
     "moments",
     "moments_from_sums",
@@ -593,3 +594,43 @@ class Estimator(ABC):
     ) -> dict[str, Any]:
         """Estimator-specific results."""
         return {}
+
+
+class NonlinearEstimator(Estimator):
+    """Base class of the estimators that are not linear regressions.
+
+    They override :meth:`~Estimator.fit` and :meth:`~Estimator.fit_values` (one
+    batched refit of all replicates); the regression form does not exist, so
+    :meth:`design` and :meth:`to_system` refuse, and the bootstrap resamples them by
+    refitting replicate values (parametric or case schemes), never by row weights.
+    """
+
+    is_regression: ClassVar[bool] = False
+
+    def design(
+        self,
+        rec: Recording,
+        equilibrium: np.ndarray | None = None,
+        values: np.ndarray | None = None,
+    ) -> Design:
+        """Not available: the fit is not a linear regression.
+
+        Raises
+        ------
+        EstimationError
+            Always; resample this estimator with :meth:`fit_values`.
+        """
+        from fitdyn.errors import EstimationError
+
+        raise EstimationError(
+            f"method '{self.name}' is not a linear regression and has no design; "
+            "resample it by refitting replicate values (fit_values)"
+        )
+
+    def to_system(self, C: np.ndarray, c: np.ndarray, design: Design) -> SystemBatch:
+        """Not available (see :meth:`design`)."""
+        from fitdyn.errors import EstimationError
+
+        raise EstimationError(
+            f"method '{self.name}' is not a linear regression; it has no coefficients to map"
+        )

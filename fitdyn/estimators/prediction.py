@@ -71,7 +71,12 @@ import numpy as np
 
 from fitdyn import linalg2
 from fitdyn.errors import EstimationError, FitdynError, SamplingError, TooFewSamplesError
-from fitdyn.estimators.base import Design, Estimate, Estimator, SystemBatch, equilibrium_from
+from fitdyn.estimators.base import (
+    Estimate,
+    NonlinearEstimator,
+    SystemBatch,
+    equilibrium_from,
+)
 from fitdyn.estimators.derivative import check_equilibrium, reject_unknown, replicate_values
 from fitdyn.recording import Recording
 
@@ -420,7 +425,7 @@ def process_noise_moments(A: np.ndarray, h: np.ndarray, r: np.ndarray, n_par: in
 # ----------------------------------------------------------------------------------
 # the estimator
 # ----------------------------------------------------------------------------------
-class PredictionEstimator(Estimator):
+class PredictionEstimator(NonlinearEstimator):
     """One-step prediction-error fit for observed states with process noise.
 
     Parameters
@@ -448,7 +453,6 @@ class PredictionEstimator(Estimator):
 
     name: ClassVar[str] = "prediction"
     needs_uniform_steps: ClassVar[bool] = False
-    is_regression: ClassVar[bool] = False
 
     def __init__(
         self,
@@ -474,31 +478,6 @@ class PredictionEstimator(Estimator):
             raise EstimationError(f"xtol must be a number in (0, 1), got {xtol!r}")
         super().__init__(weighting=weighting, frequencies=freqs, max_iterations=iters, xtol=tol)
         self._reference: dict[str, Any] | None = None
-
-    # -- not a regression ---------------------------------------------------------------
-    def design(
-        self,
-        rec: Recording,
-        equilibrium: np.ndarray | None = None,
-        values: np.ndarray | None = None,
-    ) -> Design:
-        """Not available: the prediction-error fit is nonlinear in ``A``.
-
-        Raises
-        ------
-        EstimationError
-            Always; resample it with :meth:`fit_values` (the parametric scheme).
-        """
-        raise EstimationError(
-            "method 'prediction' is not a linear regression and has no design; "
-            "resample it by refitting replicate values (fit_values)"
-        )
-
-    def to_system(self, C: np.ndarray, c: np.ndarray, design: Design) -> SystemBatch:
-        """Not available (see :meth:`design`)."""
-        raise EstimationError(
-            "method 'prediction' is not a linear regression; it has no coefficients to map"
-        )
 
     # -- units -----------------------------------------------------------------------------
     @staticmethod

@@ -72,7 +72,12 @@ from fitdyn.errors import (
     SamplingError,
     TooFewSamplesError,
 )
-from fitdyn.estimators.base import Design, Estimate, Estimator, SystemBatch, lstsq
+from fitdyn.estimators.base import (
+    Estimate,
+    NonlinearEstimator,
+    SystemBatch,
+    lstsq,
+)
 from fitdyn.estimators.discrete import (
     ALIASING_LIMIT,
     DiscreteEstimator,
@@ -1189,7 +1194,7 @@ def _chunk(lay: _Layout, B: int) -> int:
 # ==================================================================================
 # the estimator
 # ==================================================================================
-class KalmanEstimator(Estimator):
+class KalmanEstimator(NonlinearEstimator):
     """Maximum likelihood of the linear Gaussian state-space model by EM.
 
     Parameters
@@ -1233,7 +1238,6 @@ class KalmanEstimator(Estimator):
 
     name: ClassVar[str] = "kalman"
     needs_uniform_steps: ClassVar[bool] = True
-    is_regression: ClassVar[bool] = False
 
     def __init__(
         self,
@@ -1271,31 +1275,6 @@ class KalmanEstimator(Estimator):
             jitter_tolerance=jit,
         )
         self._reference: dict[str, Any] | None = None
-
-    # -- not a regression -----------------------------------------------------------------
-    def design(
-        self,
-        rec: Recording,
-        equilibrium: np.ndarray | None = None,
-        values: np.ndarray | None = None,
-    ) -> Design:
-        """Not available: the state-space fit is not a linear regression.
-
-        Raises
-        ------
-        EstimationError
-            Always; resample this estimator with :meth:`fit_values`.
-        """
-        raise EstimationError(
-            "method 'kalman' is not a linear regression and has no design; "
-            "resample it by refitting replicate values (fit_values)"
-        )
-
-    def to_system(self, C: np.ndarray, c: np.ndarray, design: Design) -> SystemBatch:
-        """Not available (see :meth:`design`)."""
-        raise EstimationError(
-            "method 'kalman' is not a linear regression; it has no coefficients to map"
-        )
 
     # -- shared preparation ----------------------------------------------------------------
     def _prepare(self, rec: Recording, eq: np.ndarray | None) -> tuple[float, _Layout]:

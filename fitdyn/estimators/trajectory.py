@@ -49,7 +49,7 @@ import numpy as np
 from fitdyn import linalg2
 from fitdyn.errors import EstimationError, FitdynError, TooFewSamplesError
 from fitdyn.estimators.auto import residual_lag1
-from fitdyn.estimators.base import Design, Estimate, Estimator, SystemBatch
+from fitdyn.estimators.base import Estimate, NonlinearEstimator, SystemBatch
 from fitdyn.estimators.derivative import check_equilibrium, reject_unknown, replicate_values
 from fitdyn.recording import Recording
 
@@ -168,7 +168,7 @@ def _full_theta(a: np.ndarray, lin: np.ndarray, prob: _Problem, kind: str) -> np
     return np.concatenate([a, v, x0])
 
 
-class TrajectoryEstimator(Estimator):
+class TrajectoryEstimator(NonlinearEstimator):
     """Output-error (trajectory-matching) fit with lmfit.
 
     Parameters
@@ -194,7 +194,6 @@ class TrajectoryEstimator(Estimator):
 
     name = "trajectory"
     needs_uniform_steps = False
-    is_regression = False
 
     def __init__(
         self,
@@ -243,32 +242,6 @@ class TrajectoryEstimator(Estimator):
             tol=float(tol),
         )
         self._reference: dict[str, Any] | None = None
-
-    # -- not a regression -----------------------------------------------------------------
-    def design(
-        self,
-        rec: Recording,
-        equilibrium: np.ndarray | None = None,
-        values: np.ndarray | None = None,
-    ) -> Design:
-        """Not available: the output-error fit is not a linear regression.
-
-        Raises
-        ------
-        EstimationError
-            Always; resample this estimator with :meth:`fit_values` (parametric or
-            trajectory-case schemes), not with row weights.
-        """
-        raise EstimationError(
-            "method 'trajectory' is not a linear regression and has no design; "
-            "resample it by refitting replicate values (fit_values)"
-        )
-
-    def to_system(self, C: np.ndarray, c: np.ndarray, design: Design) -> SystemBatch:
-        """Not available (see :meth:`design`)."""
-        raise EstimationError(
-            "method 'trajectory' is not a linear regression; it has no coefficients to map"
-        )
 
     # -- the problem ------------------------------------------------------------------------
     def _problem(self, rec: Recording, values: np.ndarray, eq: np.ndarray | None) -> _Problem:
