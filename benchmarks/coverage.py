@@ -93,6 +93,8 @@ _LISTED: dict[str, list[tuple[str, str, bool]]] = {
         ("derivative", "parametric", False),
     ],
     "irregular-mixed": [
+        ("nonlinear-iv", "parametric", True),
+        ("nonlinear-iv", "parametric", False),
         ("derivative", "blocks", False),
         ("prediction", "parametric", True),
         ("integral", "blocks", False),
@@ -230,7 +232,9 @@ def _job(args):
                 e = est.fit(rec)
             slow = est.name in ("trajectory", "kalman")
             reps = min(replicates, TRAJECTORY_REPLICATES) if slow else replicates
-            u = bootstrap(rec, est, e, replicates=reps, seed=[seed, index, k],
+            # seeded by the configuration, not its position: --methods keeps the numbers
+            cfg_key = zlib.crc32(f"{method}/{scheme}/{bc}".encode())
+            u = bootstrap(rec, est, e, replicates=reps, seed=[seed, index, cfg_key],
                           scheme=scheme, bias_correction=bc, quiet=True)  # fmt: skip
             iv = u.intervals
             row["trace"] = iv["trace"][0] <= tau <= iv["trace"][1]
@@ -254,9 +258,18 @@ def main() -> None:
     ap.add_argument("--seed", type=int, default=2024)
     ap.add_argument("--only", default=None, help="comma-separated scenarios")
     ap.add_argument("--workers", type=int, default=min(2, os.cpu_count() or 1))
+    ap.add_argument(
+        "--methods",
+        default=None,
+        help="comma-separated estimators: run only their rows (auto included)",
+    )
     args = ap.parse_args()
     N = args.datasets or (60 if args.quick else 300)
     scen = list(CONFIGS) if args.only is None else args.only.split(",")
+    if args.methods is not None:
+        keep = set(args.methods.split(","))
+        for s in scen:
+            CONFIGS[s] = [c for c in CONFIGS[s] if c[0] in keep or c[0] == "auto"]
     jobs = [(s, i, args.seed, args.replicates) for s in scen for i in range(N)]
     t0 = time.perf_counter()
     results: dict[str, list[list[dict]]] = defaultdict(list)
@@ -299,6 +312,11 @@ def main() -> None:
                 picks = Counter(r.get("chosen", "failed") for r in rows)
                 print(f"{'':<18}  auto chose: "
                       + ", ".join(f"{m} {c}" for m, c in picks.most_common()))  # fmt: skip
+                for m_, c_ in picks.most_common():
+                    sub = [r for r in rows if r.get("chosen", "failed") == m_]
+                    cov_m = " / ".join(f"{np.mean([r[q] for r in sub]):.3f}"
+                                       for q in ("trace", "det", "maxre"))  # fmt: skip
+                    print(f"{'':<18}    where it chose {m_} ({c_}): coverage {cov_m}")
             for p, y in zip(ps[ok], st[ok], strict=True):
                 pooled[(method, scheme, bc)].append((p, bool(y)))
 

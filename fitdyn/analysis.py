@@ -469,8 +469,10 @@ def fit(
         The data; anything but a Recording goes through :func:`fitdyn.read` with
         ``read_options``.
     method : str
-        ``"auto"`` (default), ``"derivative"``, ``"integral"``, ``"discrete"`` or
-        ``"trajectory"``.
+        ``"auto"`` (default: chosen from the data, the reasons in the notes) or one
+        of the registered estimators (:data:`fitdyn.estimators.METHODS`):
+        ``"derivative"``, ``"integral"``, ``"discrete"``, ``"instrumental"``,
+        ``"nonlinear-iv"``, ``"prediction"``, ``"kalman"``, ``"trajectory"``.
     equilibrium : "estimate" or array-like of 2 floats
         Estimate the equilibrium (default) or use a known one.
     bootstrap : int

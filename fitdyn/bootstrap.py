@@ -1620,6 +1620,7 @@ def default_bias_correction(scheme: str, estimator: Estimator) -> bool:
         "instrumental",
         "kalman",
         "prediction",
+        "nonlinear-iv",
     )
 
 

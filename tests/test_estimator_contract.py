@@ -6,8 +6,8 @@ scipy.linalg.expm (reference library), independent of fitdyn's own simulator.
 Noise-free recovery to a relative 1e-6 needs data whose discretisation error is
 below that: the integral form's trapezoid rule has a relative error of about
 (h |lambda|)^2 / 12 and the default derivative (Savitzky-Golay cubic fits) about
-(h |lambda|)^4, so those run on finely sampled records; the discrete, trajectory and
-prediction fits are exact at any step.
+(h |lambda|)^4, so those run on finely sampled records; the discrete, trajectory,
+prediction and nonlinear-iv fits are exact at any step.
 """
 
 from __future__ import annotations
@@ -38,6 +38,7 @@ FINE = {
     "trajectory": 201,
     "kalman": 201,
     "prediction": 201,
+    "nonlinear-iv": 201,
     "auto": 8001,
 }
 

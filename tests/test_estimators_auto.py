@@ -56,17 +56,34 @@ def test_irregular_process_noise_chooses_the_prediction_error_fit():
     assert any("irregular steps" in n for n in auto_notes(est))
 
 
-def test_irregular_mixed_noise_falls_back_to_the_derivative_regression():
-    # no instrumental fit on irregular steps: derivative regression, with the warning
+def _irregular_mixed():
     t = np.sort(np.r_[0.0, np.random.default_rng(5).uniform(0, 140, 279)])
-    rec = fitdyn.simulate(
+    return fitdyn.simulate(
         np.array([[-0.35, 0.30], [0.15, -0.20]]), [0.0, 0.0], [8.0, 3.0], t,
         process_noise=[[0.002, 0.0], [0.0, 0.0005]], measurement_noise=[0.1, 0.06], seed=5,
     )  # fmt: skip
-    est, _ = choose_and_fit(rec)
-    assert est.method == "derivative"
+
+
+def test_irregular_mixed_noise_chooses_the_nonlinear_instrumental_fit():
+    est, _ = choose_and_fit(_irregular_mixed())
+    assert est.method == "nonlinear-iv"
     assert any("measurement noise as well" in n for n in auto_notes(est))
-    assert any("needs uniform steps" in w for w in est.warnings)
+    assert any("expm(A h) on every step" in n for n in auto_notes(est))
+    assert not any("could not be used" in w for w in est.warnings)
+
+
+def test_irregular_mixed_noise_falls_back_with_a_warning(monkeypatch):
+    from fitdyn.errors import EstimationError
+    from fitdyn.estimators import nonlinear_iv
+
+    def refuse(self, rec, equilibrium=None):
+        raise EstimationError("no finite solution (test)")
+
+    monkeypatch.setattr(nonlinear_iv.NonlinearIVEstimator, "fit", refuse)
+    est, _ = choose_and_fit(_irregular_mixed())
+    assert est.method == "derivative"
+    assert any("'nonlinear-iv' refused" in n for n in est.notes)
+    assert any("could not be used" in w for w in est.warnings)
 
 
 def test_discrete_refusal_falls_back(monkeypatch):
@@ -179,9 +196,16 @@ def test_mixed_noise_warned_about_when_the_instrumental_fit_refuses(monkeypatch)
         raise NoRealLogarithmError("no real logarithm (test)")
 
     monkeypatch.setattr(instrumental.InstrumentalEstimator, "fit", refuse)
+    # the nonlinear fit on the same instruments takes over
+    est, _ = choose_and_fit(_chamber_like())
+    assert est.method == "nonlinear-iv"
+    assert any("'instrumental' refused" in n for n in est.notes)
+    # and when it refuses too, the derivative regression with the warning
+    from fitdyn.estimators import nonlinear_iv
+
+    monkeypatch.setattr(nonlinear_iv.NonlinearIVEstimator, "fit", refuse)
     est, _ = choose_and_fit(_chamber_like())
     assert est.method == "derivative"
-    assert any("instrumental-variable fit refused" in n for n in est.notes)
     assert any("process noise and measurement noise" in w for w in est.warnings)
 
 

@@ -35,6 +35,7 @@ _REGISTRY: dict[str, tuple[str, str]] = {
     "trajectory": ("fitdyn.estimators.trajectory", "TrajectoryEstimator"),
     "kalman": ("fitdyn.estimators.statespace", "KalmanEstimator"),
     "prediction": ("fitdyn.estimators.prediction", "PredictionEstimator"),
+    "nonlinear-iv": ("fitdyn.estimators.nonlinear_iv", "NonlinearIVEstimator"),
 }
 
 #: Names accepted by :func:`estimate` (``"auto"`` included).
