@@ -5,6 +5,7 @@ Public API
 read      clean a two-channel recording (file, DataFrame or arrays) into a Recording
 fit       estimate the system matrix, classify the equilibrium, quantify uncertainty
 simulate  exact-discretisation simulator of dx = A (x - x*) dt + noise
+batch     fit many recordings (in parallel if asked); one results table
 """
 
 from __future__ import annotations
@@ -14,10 +15,12 @@ from typing import Any
 
 __version__ = "0.1.0"
 
-__all__ = ["read", "fit", "simulate", "Recording", "Fit", "__version__"]
+__all__ = ["read", "fit", "simulate", "batch", "Recording", "Fit", "__version__"]
 
-# The function shares its name with its module: import it eagerly so that the
-# attribute is the function whatever is imported later (the module needs only numpy).
+# These functions share their names with their modules: import them eagerly so that
+# the attributes are the functions whatever is imported later (the modules need only
+# numpy at import time).
+from fitdyn.batch import batch  # noqa: E402
 from fitdyn.simulate import simulate  # noqa: E402
 
 _LAZY = {

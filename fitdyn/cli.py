@@ -115,32 +115,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("fit", help="estimate A, classify the equilibrium, report")
     p.add_argument("file")
     _add_import_options(p)
-    g = p.add_argument_group("estimation")
-    g.add_argument(
-        "--method",
-        default="auto",
-        choices=METHODS,
-        help="estimator (default auto: chosen from the data)",
-    )
-    g.add_argument("--equilibrium", metavar="X,Y", help="known equilibrium (default: estimate)")
-    g.add_argument("--derivative", choices=("fd", "savgol", "spline"), help="derivative method")
-    g.add_argument("--bootstrap", type=int, default=0, metavar="B", help="bootstrap replicates")
-    g.add_argument("--confidence", type=float, default=0.95, metavar="C", help="interval level")
-    g.add_argument("--seed", type=int, default=None, metavar="S", help="random seed")
-    g.add_argument("--scheme", default="auto", help="resampling scheme (default auto)")
-    g.add_argument(
-        "--interval", choices=("percentile", "bca"), default="percentile", help="interval kind"
-    )
-    g.add_argument(
-        "--margin",
-        type=float,
-        default=None,
-        metavar="M",
-        help="practical-equivalence margin for the boundary classes (e.g. 0.01)",
-    )
-    g.add_argument(
-        "--asymptotic", action="store_true", help="fast delta-method intervals, no bootstrap"
-    )
+    _add_estimation_options(p, seed_help="random seed")
     o = p.add_argument_group("output")
     o.add_argument("--json", metavar="PATH", help="write the result as JSON")
     o.add_argument("--report", metavar="DIR", help="write a self-contained HTML report folder")
@@ -163,7 +138,95 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--measurement-noise", type=float, default=None, metavar="SD")
     p.add_argument("--seed", type=int, default=None, metavar="S")
     p.add_argument("--out", required=True, metavar="PATH", help="CSV file to write")
+
+    p = sub.add_parser(
+        "batch",
+        help="fit many recordings (in parallel); one results table",
+        description=(
+            "Fit every recording with the same options and write one table, one row per "
+            "file. A file that cannot be fitted gets status 'error' and the reason; the "
+            "others go on. Each file's seed comes from --seed and its place in the "
+            "sorted list, so the table does not depend on --workers."
+        ),
+    )
+    p.add_argument(
+        "sources",
+        nargs="+",
+        metavar="SOURCE",
+        help="recordings: files, folders (their csv/tsv/txt/xlsx/parquet files) or quoted "
+        "glob patterns such as 'runs/**/*.csv'",
+    )
+    _add_import_options(p)
+    _add_estimation_options(p, seed_help="master seed (each file's own seed is in the table)")
+    r = p.add_argument_group("running")
+    r.add_argument("--workers", type=int, default=1, metavar="N", help="processes (default 1)")
+    r.add_argument(
+        "--backend",
+        choices=("process", "dask"),
+        default="process",
+        help='local process pool (default) or Dask (pip install "fitdyn[dask]")',
+    )
+    r.add_argument("--chunk", type=int, default=None, metavar="K", help="files per task")
+    o = p.add_argument_group("output")
+    o.add_argument("--out", required=True, metavar="PATH", help="results table (.csv, or .parquet)")
+    o.add_argument("--json-dir", metavar="DIR", help="also write each fit's JSON result here")
+    o.add_argument("--quiet", action="store_true", help="no progress bar, no summary")
     return parser
+
+
+def _add_estimation_options(p: argparse.ArgumentParser, seed_help: str) -> None:
+    g = p.add_argument_group("estimation")
+    g.add_argument(
+        "--method",
+        default="auto",
+        choices=METHODS,
+        help="estimator (default auto: chosen from the data)",
+    )
+    g.add_argument("--equilibrium", metavar="X,Y", help="known equilibrium (default: estimate)")
+    g.add_argument("--derivative", choices=("fd", "savgol", "spline"), help="derivative method")
+    g.add_argument("--bootstrap", type=int, default=0, metavar="B", help="bootstrap replicates")
+    g.add_argument("--confidence", type=float, default=0.95, metavar="C", help="interval level")
+    g.add_argument("--seed", type=int, default=None, metavar="S", help=seed_help)
+    g.add_argument("--scheme", default="auto", help="resampling scheme (default auto)")
+    g.add_argument(
+        "--interval", choices=("percentile", "bca"), default="percentile", help="interval kind"
+    )
+    g.add_argument(
+        "--margin",
+        type=float,
+        default=None,
+        metavar="M",
+        help="practical-equivalence margin for the boundary classes (e.g. 0.01)",
+    )
+    g.add_argument(
+        "--asymptotic", action="store_true", help="fast delta-method intervals, no bootstrap"
+    )
+
+
+def _estimation_options(args: argparse.Namespace) -> dict[str, Any]:
+    """The keywords of fitdyn.fit given on the command line (checked)."""
+    settings: dict[str, Any] = {}
+    if args.derivative:
+        settings["derivative"] = args.derivative
+    eq: Any = "estimate"
+    if args.equilibrium:
+        eq = _pair(args.equilibrium, "--equilibrium")
+    if args.bootstrap < 0:
+        raise FitdynError(f"--bootstrap must be 0 or more, got {args.bootstrap}")
+    if not 0 < args.confidence < 1:
+        raise FitdynError(f"--confidence must be between 0 and 1, got {args.confidence}")
+    return {
+        "method": args.method,
+        "equilibrium": eq,
+        "bootstrap": args.bootstrap,
+        "confidence": args.confidence,
+        "seed": args.seed,
+        "scheme": args.scheme,
+        "interval": args.interval,
+        "margin": args.margin,
+        "asymptotic": args.asymptotic,
+        "settings": settings or None,
+    }
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
@@ -186,28 +249,9 @@ def _cmd_check(args: argparse.Namespace) -> int:
 def _cmd_fit(args: argparse.Namespace) -> int:
     from fitdyn.analysis import fit
 
-    settings: dict[str, Any] = {}
-    if args.derivative:
-        settings["derivative"] = args.derivative
-    eq: Any = "estimate"
-    if args.equilibrium:
-        eq = _pair(args.equilibrium, "--equilibrium")
-    if args.bootstrap < 0:
-        raise FitdynError(f"--bootstrap must be 0 or more, got {args.bootstrap}")
-    if not 0 < args.confidence < 1:
-        raise FitdynError(f"--confidence must be between 0 and 1, got {args.confidence}")
     result = fit(
         args.file,
-        method=args.method,
-        equilibrium=eq,
-        bootstrap=args.bootstrap,
-        confidence=args.confidence,
-        seed=args.seed,
-        scheme=args.scheme,
-        interval=args.interval,
-        margin=args.margin,
-        asymptotic=args.asymptotic,
-        settings=settings or None,
+        **_estimation_options(args),
         quiet=args.quiet or not sys.stderr.isatty(),
         **_read_options(args),
     )
@@ -253,6 +297,33 @@ def _cmd_simulate(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_batch(args: argparse.Namespace) -> int:
+    from fitdyn.batch import batch, summary
+
+    opts = _estimation_options(args)
+    table = batch(
+        args.sources,
+        out=args.out,
+        json_dir=args.json_dir,
+        workers=args.workers,
+        backend=args.backend,
+        chunk=args.chunk,
+        quiet=args.quiet,
+        **opts,
+        **_read_options(args),
+    )
+    if not args.quiet:
+        print(summary(table, args.out))
+    failed = int((table["status"] != "ok").sum())
+    if failed:
+        print(
+            f"fitdyn: {failed} of {len(table)} recordings failed; their rows in {args.out} "
+            "have status 'error' and the reason in 'message'",
+            file=sys.stderr,
+        )
+    return 0
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     parser = build_parser()
@@ -260,7 +331,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     if args.command is None:
         parser.print_help()
         return 2
-    handler = {"check": _cmd_check, "fit": _cmd_fit, "simulate": _cmd_simulate}[args.command]
+    handler = {
+        "check": _cmd_check,
+        "fit": _cmd_fit,
+        "simulate": _cmd_simulate,
+        "batch": _cmd_batch,
+    }[args.command]
     try:
         return handler(args)
     except FitdynError as exc:
