@@ -1055,7 +1055,15 @@ class _Plan:
 
     # -- refits ------------------------------------------------------------------------
     def refit_values(self, values: np.ndarray) -> np.ndarray:
-        """Coefficients of replicate values (B, n, 2)."""
+        """Coefficients of replicate values (B, n, 2).
+
+        Floating-point warnings are silenced: a replicate simulated from an explosive
+        model may overflow, and its fit then fails and is counted, never hidden.
+        """
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            return self._refit_values(values)
+
+    def _refit_values(self, values: np.ndarray) -> np.ndarray:
         if self.regression:
             d = self.est.design(self.rec, self.eq, values)
             C, c = self.est.solve(d)

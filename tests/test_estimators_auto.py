@@ -216,3 +216,20 @@ def test_pure_measurement_noise_is_not_warned_about_a_mix():
     est, _ = choose_and_fit(rec)
     assert est.method == "trajectory"
     assert not any("measurement noise appear" in w for w in est.warnings)
+
+
+def test_lag1_t_statistic():
+    from fitdyn.estimators.auto import lag1_t
+
+    rng = np.random.default_rng(3)
+    seg = np.zeros(4000, dtype=int)
+    # independent errors with variances that change from row to row: about N(0, 1)
+    white = rng.standard_normal((4000, 2)) * rng.uniform(0.1, 3.0, (4000, 1))
+    assert abs(lag1_t(white, seg)) < 3.5
+    # one-step errors with sensor noise, e_{k+1} - e_k: lag-1 correlation -1/2
+    e = rng.standard_normal((4001, 2))
+    ma = e[1:] - e[:-1]
+    assert lag1_t(ma, seg) < -10
+    # products never pair rows across segments
+    seg2 = np.arange(4000) % 2  # every neighbour in another segment: no pairs
+    assert np.isnan(lag1_t(ma, seg2))

@@ -107,17 +107,23 @@ def test_consistent_on_irregular_steps_where_prediction_error_is_attenuated():
     np.testing.assert_allclose(iv.equilibrium, X_STAR, atol=0.05)
 
 
-def test_noise_by_moments_near_the_truth():
-    rec = _irregular_mixed(20000, seed=6, span=2000.0, meas=0.3, q=0.3)
-    e = get_estimator("nonlinear-iv").fit(rec)
+@pytest.mark.parametrize("noise", ["likelihood", "moments"])
+def test_noise_near_the_truth(noise):
+    rec = _irregular_mixed(6000, seed=6, span=600.0, meas=0.3, q=0.3)
+    e = get_estimator("nonlinear-iv", noise=noise).fit(rec)
+    assert any(f"noise by {'maximum likelihood' if noise == 'likelihood' else 'moments'}" in n
+               for n in e.notes)  # fmt: skip
     np.testing.assert_allclose(e.extra["measurement_cov"], np.diag([0.09, 0.09]), atol=0.02)
-    np.testing.assert_allclose(e.extra["process_noise"], np.diag([0.3, 0.3]), atol=0.08)
+    # the process noise is the hard part when the sensor noise dominates a step: the
+    # likelihood pins it down better than the moments (loose bounds for one record)
+    tol = 0.06 if noise == "likelihood" else 0.15
+    np.testing.assert_allclose(e.extra["process_noise"], np.diag([0.3, 0.3]), atol=tol)
 
 
 def test_sandwich_covariance_matches_the_spread_of_estimates():
     # the method-of-moments covariance against the spread over 40 simulated records
     # of the same design (a loose factor: 40 records estimate an sd to about 11 %)
-    est = NonlinearIVEstimator()
+    est = NonlinearIVEstimator(noise="moments")  # the noise plays no part here
     mats, sds = [], []
     for s in range(40):
         e = est.fit(_irregular_mixed(600, seed=100 + s))
@@ -181,13 +187,29 @@ def test_coverage_small_simulation_irregular_with_both_noises():
     # that the prediction-error fit, attenuated by the sensor noise, fails
     trace = float(np.trace(SPIRAL))
     hits = {"nonlinear-iv": 0, "prediction": 0}
-    for i in range(24):
-        rec = _irregular_mixed(300, seed=200 + i, meas=0.3, q=0.2)
+    for i in range(20):
+        rec = _irregular_mixed(250, seed=200 + i, meas=0.3, q=0.2)
         for name in hits:
             est = get_estimator(name)
             e = est.fit(rec)
-            u = bootstrap(rec, est, e, replicates=100, seed=i, quiet=True)
+            u = bootstrap(rec, est, e, replicates=80, seed=i, quiet=True,
+                          bias_correction=None if name == "nonlinear-iv" else False)  # fmt: skip
             lo, hi = u.intervals["trace"]
             hits[name] += lo <= trace <= hi
-    assert hits["nonlinear-iv"] >= 19, hits
-    assert hits["prediction"] <= 12, hits
+    assert hits["nonlinear-iv"] >= 16, hits
+    assert hits["prediction"] <= 10, hits
+
+
+def test_asymptotic_agrees_with_bootstrap_on_a_long_record():
+    from fitdyn.asymptotic import asymptotic
+
+    rec = _irregular_mixed(3000, seed=12, span=300.0, meas=0.2, q=0.3)
+    est = NonlinearIVEstimator()
+    e = est.fit(rec)
+    u = bootstrap(rec, est, e, replicates=200, seed=3, bias_correction=False, quiet=True)
+    a = asymptotic(rec, est, e, seed=1)
+    for name in ("trace", "determinant", "max_real_part"):
+        lo_b, hi_b = u.intervals[name]
+        lo_a, hi_a = a.intervals[name]
+        width = hi_b - lo_b
+        assert abs(lo_a - lo_b) < 0.2 * width and abs(hi_a - hi_b) < 0.2 * width, name

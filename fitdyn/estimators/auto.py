@@ -16,9 +16,12 @@ The policy (chosen with ``benchmarks/accuracy.py``; see its table):
    far too narrow, so it is not used.
 3. Otherwise process noise matters: use a one-step fit, exact for the sampled
    process -- the ``discrete`` fit on uniform steps, the ``prediction`` (one-step
-   prediction-error) fit on irregular ones.  If its one-step residuals are
-   negatively autocorrelated, the signature of measurement noise on top of the
-   process noise, which biases one-step fits on the samples, use instead the
+   prediction-error) fit on irregular ones.  If its one-step residuals show
+   measurement noise on top of the process noise, which biases one-step fits on the
+   samples -- negative lag-1 autocorrelation, or a negative self-normalised lag-1 t
+   statistic (:func:`lag1_t`, which keeps its scale on irregular steps), or a fitted
+   mode that decays within a sampling step (sensor noise absorbed as an instant
+   decay, whose residuals then look white) -- use instead the
    ``instrumental`` one-step fit (earlier samples as instruments, consistent under
    both noises; its bias-corrected parametric bootstrap is the calibrated one in
    the benchmark's "mixed" scenario) on uniform steps, and on irregular steps (or
@@ -40,11 +43,12 @@ from typing import Any
 
 import numpy as np
 
+from fitdyn import linalg2
 from fitdyn.errors import FitdynError, NoRealLogarithmError, SamplingError
 from fitdyn.estimators.base import Estimate, Estimator
 from fitdyn.recording import Recording
 
-__all__ = ["choose_and_fit", "residual_lag1", "ljung_box_p", "AUTO_SETTINGS"]
+__all__ = ["choose_and_fit", "residual_lag1", "lag1_t", "ljung_box_p", "AUTO_SETTINGS"]
 
 #: The policy's own settings and their defaults.
 AUTO_SETTINGS: dict[str, Any] = {
@@ -60,6 +64,13 @@ AUTO_SETTINGS: dict[str, Any] = {
     "whiteness_p": 1e-4,
     # lags of that test
     "whiteness_lags": 10,
+    # one-step residuals: the smaller of the channels' self-normalised lag-1 t
+    # statistics below which measurement noise is taken to be present (one-sided,
+    # about 1 % false alarms for independent errors, the smaller of two)
+    "sensor_t": -2.5,
+    # one-step fits whose fastest |Re lambda| times the median step exceeds this have
+    # absorbed sensor noise as a mode that decays within a step
+    "fast_mode": 3.0,
 }
 
 
@@ -88,6 +99,39 @@ def residual_lag1(residuals: np.ndarray, segment: np.ndarray) -> float:
     with np.errstate(divide="ignore", invalid="ignore"):
         rho = np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
     return float(np.nanmean(rho)) if np.any(np.isfinite(rho)) else float("nan")
+
+
+def lag1_t(residuals: np.ndarray, segment: np.ndarray) -> float:
+    """The smaller of the channels' self-normalised lag-1 t statistics.
+
+    For channel ``c`` the products ``p_k = r_{k+1,c} r_{k,c}`` of neighbouring
+    residuals within segments have mean zero when the residuals are independent
+    (a martingale difference sequence), so ``t = sum p_k / sqrt(sum p_k^2)`` is
+    close to standard normal whatever the residuals' variances; sensor noise on
+    one-step errors makes their mean negative.  Unlike the correlation, the
+    statistic keeps its scale when the variances differ from step to step
+    (irregular steps).
+
+    Parameters
+    ----------
+    residuals : ndarray, shape (m, 2)
+    segment : int ndarray, shape (m,)
+
+    Returns
+    -------
+    float
+        NaN when fewer than three within-segment pairs exist.
+    """
+    r = np.asarray(residuals, dtype=float)
+    seg = np.asarray(segment)
+    same = seg[1:] == seg[:-1]
+    if int(same.sum()) < 3:
+        return float("nan")
+    p = (r[1:] * r[:-1])[same]
+    den = np.sqrt(np.sum(p * p, axis=0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = np.where(den > 0, p.sum(axis=0) / np.where(den > 0, den, 1.0), np.nan)
+    return float(np.nanmin(t)) if np.any(np.isfinite(t)) else float("nan")
 
 
 def ljung_box_p(residuals: np.ndarray, segment: np.ndarray, lags: int = 10) -> np.ndarray:
@@ -141,7 +185,7 @@ def _make(method: str, settings: dict[str, Any]) -> tuple[Estimator, list[str]]:
         "instrumental": ("jitter_tolerance", "lags"),
         "trajectory": ("start", "weights", "noise_sd", "frequencies", "max_nfev", "tol"),
         "prediction": ("weighting", "frequencies", "max_iterations", "xtol"),
-        "nonlinear-iv": ("frequencies", "max_iterations", "xtol"),
+        "nonlinear-iv": ("noise", "frequencies", "max_iterations", "xtol"),
     }[method]
     use = {k: v for k, v in settings.items() if k in allowed}
     ignored = sorted(k for k in settings if k not in allowed)
@@ -296,11 +340,24 @@ def choose_and_fit(
                 raw = raw * np.sqrt(h_o)[:, None]
             lag_o = residual_lag1(raw, seg_o)
             limit = -max(0.1, 2.5 / np.sqrt(max(est_o.n_used, 1)))
+            t_o = lag1_t(raw, seg_o)
+            fast = float(np.max(np.abs(linalg2.eigvals(est_o.matrix).real)) * np.median(h_o))
+            signs = []
             if np.isfinite(lag_o) and lag_o < limit:
+                signs.append(f"lag-1 autocorrelation {lag_o:.2f} < {limit:.2f}")
+            if np.isfinite(t_o) and t_o < policy["sensor_t"]:
+                signs.append(f"lag-1 products' t statistic {t_o:.2f} < {policy['sensor_t']:g}")
+            if fast > policy["fast_mode"]:
+                signs.append(
+                    f"a mode faster than the sampling resolves (|Re lambda| x median step "
+                    f"{fast:.3g} > {policy['fast_mode']:g}: sensor noise absorbed as an "
+                    "instant decay)"
+                )
+            if signs:
                 reasons.append(
-                    f"auto: one-step residuals negatively autocorrelated (lag-1 {lag_o:.2f} "
-                    f"< {limit:.2f}) -> measurement noise as well; a one-step fit on the "
-                    "samples is attenuated, not used"
+                    f"auto: one-step residuals show measurement noise ({'; '.join(signs)}) "
+                    "-> measurement noise as well; a one-step fit on the samples is "
+                    "attenuated, not used"
                 )
                 if process:
                     chosen, ignored = _instrumental(rec, eq, settings, reasons, samp["uniform"])

@@ -554,22 +554,29 @@ class PredictionEstimator(NonlinearEstimator):
     # -- units -----------------------------------------------------------------------------
     @staticmethod
     def _units(V: np.ndarray, h: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
-        """Channel centres and spreads per replicate (B, 2) and the time scale."""
-        mu = V.mean(axis=1)
-        sd = V.std(axis=1)
-        sd = np.where(sd > 0, sd, np.maximum(np.abs(mu), 1.0))
+        """Channel centres and spreads per replicate (B, 2) and the time scale.
+
+        A replicate whose values overflow (simulated from an explosive model) gets
+        non-finite units; its fit then fails and is counted, without warnings.
+        """
+        with np.errstate(over="ignore", invalid="ignore"):
+            mu = V.mean(axis=1)
+            sd = V.std(axis=1)
+            sd = np.where(sd > 0, sd, np.maximum(np.abs(mu), 1.0))
         return mu, sd, float(np.median(h))
 
     @staticmethod
     def _to_internal(A, xs, mu, sd, T):
-        A_i = T * A * sd[:, None, :] / sd[:, :, None]
-        xs_i = (xs - mu) / sd
+        with np.errstate(over="ignore", invalid="ignore"):
+            A_i = T * A * sd[:, None, :] / sd[:, :, None]
+            xs_i = (xs - mu) / sd
         return A_i, xs_i
 
     @staticmethod
     def _to_original(A_i, xs_i, mu, sd, T):
-        A = A_i * sd[:, :, None] / sd[:, None, :] / T
-        xs = mu + sd * xs_i
+        with np.errstate(over="ignore", invalid="ignore"):
+            A = A_i * sd[:, :, None] / sd[:, None, :] / T
+            xs = mu + sd * xs_i
         return A, xs
 
     # -- starts ------------------------------------------------------------------------------
