@@ -80,6 +80,8 @@ METHODS = (
     "integral",
     "discrete",
     "instrumental",
+    "nonlinear-iv",
+    "prediction",
     "kalman",
     "trajectory",
     "auto",
@@ -112,6 +114,13 @@ CONDITIONS: tuple[Condition, ...] = (
     Condition("proc 20 %, uniform, 5 traj x 200", process=20, trajectories=5, samples=1000),
     Condition("proc 10 % + meas 2 %, uniform, 1 traj", measurement=2, process=10),
     Condition("proc 20 % + meas 5 %, uniform, 1 traj, 500", measurement=5, process=20, samples=500),
+    Condition(
+        "proc 20 % + meas 5 %, irregular, 1 traj, 500",
+        measurement=5,
+        process=20,
+        irregular=True,
+        samples=500,
+    ),
 )
 
 TARGET = CONDITIONS[1]

@@ -29,8 +29,9 @@ bound it, :func:`fit_noise` cuts segments longer than :data:`PIECE` samples into
 pieces that overlap by one sample and treats the pieces as independent lanes, each
 started diffusely at its first sample: the objective is then the product of the
 exact likelihoods of the pieces, each conditional on its first sample -- a
-composite likelihood (Lindsay, Contemp. Math. 80, 1988), still consistent, which
-gives up one sample's worth of information per piece (under 1 %).
+composite likelihood (Lindsay, Contemp. Math. 80, 1988, from memory), still
+consistent, which gives up one sample's worth of information per piece (under
+1 %).
 :func:`noise_log_likelihood` is the exact, uncut likelihood.  Records longer than
 :data:`MAX_TRANSITIONS` keep the moment estimate.
 """

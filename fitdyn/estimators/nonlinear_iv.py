@@ -17,9 +17,10 @@ The estimate solves the moment equations
 six equations in the six unknowns ``(A, x*)`` (with a known equilibrium the
 constant instrument and ``x*`` are dropped: four in four).  This is the nonlinear
 instrumental-variable estimator (Amemiya, J. Econometrics 2, 1974; Hansen,
-Econometrica 50, 1982, for the general method of moments), consistent under process
-noise, sensor noise or both, on uniform or irregular steps.  On a uniform step it is
-the ``instrumental`` estimator with one lag: the moment equations are the same
+Econometrica 50, 1982, for the general method of moments; both from memory),
+consistent under process noise, sensor noise or both, on uniform or irregular
+steps.  On a uniform step it is the ``instrumental`` estimator with one lag: the
+moment equations are the same
 two-stage least-squares equations in ``F = expm(A h)`` and ``g = (I - F) x*``, a
 one-to-one reparameterisation (where ``F`` has a real logarithm).
 
