@@ -54,6 +54,8 @@ Usage::
     python benchmarks/coverage.py            # 300 datasets per scenario
     python benchmarks/coverage.py --quick    # 60 datasets per scenario
     python benchmarks/coverage.py --datasets 100 --replicates 300 --only short,process
+    python benchmarks/coverage.py --methods auto            # only what fit() does
+    python benchmarks/coverage.py --methods discrete,integral --skip-auto
 """
 
 from __future__ import annotations
@@ -211,7 +213,7 @@ def _dataset(scenario: str, index: int, seed: int):
 
 
 def _job(args):
-    scenario, index, seed, replicates = args
+    scenario, index, seed, replicates, slow_replicates = args
     A, rec = _dataset(scenario, index, seed)
     tau, det, _ = linalg2.invariants(A)
     maxre = float(linalg2.eigvals(A[None])[0].real.max())
@@ -231,7 +233,7 @@ def _job(args):
                 est = get_estimator(method)
                 e = est.fit(rec)
             slow = est.name in ("trajectory", "kalman")
-            reps = min(replicates, TRAJECTORY_REPLICATES) if slow else replicates
+            reps = min(replicates, slow_replicates) if slow else replicates
             # seeded by the configuration, not its position: --methods keeps the numbers
             cfg_key = zlib.crc32(f"{method}/{scheme}/{bc}".encode())
             u = bootstrap(rec, est, e, replicates=reps, seed=[seed, index, cfg_key],
@@ -263,6 +265,17 @@ def main() -> None:
         default=None,
         help="comma-separated estimators: run only their rows (auto included)",
     )
+    ap.add_argument(
+        "--skip-auto",
+        action="store_true",
+        help="leave out the auto row (to rerun only comparison rows)",
+    )
+    ap.add_argument(
+        "--slow-replicates",
+        type=int,
+        default=TRAJECTORY_REPLICATES,
+        help="replicates for the trajectory and kalman fits (capped by --replicates)",
+    )
     args = ap.parse_args()
     N = args.datasets or (60 if args.quick else 300)
     scen = list(CONFIGS) if args.only is None else args.only.split(",")
@@ -270,7 +283,13 @@ def main() -> None:
         keep = set(args.methods.split(","))
         for s in scen:
             CONFIGS[s] = [c for c in CONFIGS[s] if c[0] in keep or c[0] == "auto"]
-    jobs = [(s, i, args.seed, args.replicates) for s in scen for i in range(N)]
+    if args.skip_auto:
+        for s in scen:
+            CONFIGS[s] = [c for c in CONFIGS[s] if c[0] != "auto"]
+    scen = [s for s in scen if CONFIGS[s]]
+    jobs = [
+        (s, i, args.seed, args.replicates, args.slow_replicates) for s in scen for i in range(N)
+    ]
     t0 = time.perf_counter()
     results: dict[str, list[list[dict]]] = defaultdict(list)
     if args.workers > 1:
@@ -284,7 +303,7 @@ def main() -> None:
     wall = time.perf_counter() - t0
 
     print(f"coverage of nominal 95 % intervals, {N} datasets per scenario, "
-          f"{args.replicates} replicates each ({TRAJECTORY_REPLICATES} for the trajectory and "
+          f"{args.replicates} replicates each ({args.slow_replicates} for the trajectory and "
           f"kalman fits; kalman on the first {SLOW_DATASETS['kalman']} datasets only); "
           f"{wall:.0f} s on {args.workers} workers")  # fmt: skip
     print("first row of each scenario: auto, what fit() does by default (its choices below); "

@@ -37,6 +37,24 @@ def test_uniform_process_noise_chooses_the_discrete_fit():
     assert any("one-step discrete fit" in n for n in auto_notes(est))
 
 
+def test_short_process_noise_record_is_not_taken_for_sensor_noise():
+    # 50 samples under process noise: the output-error residuals have lag-1
+    # autocorrelation 0.40 and pass the Ljung-Box test (p 0.06), which a limit of 0.5
+    # took for sensor noise (then the intervals miss the truth); independent sensor
+    # noise gives about 0 +- 1/sqrt(50) (common practice, no source)
+    t = np.linspace(0, 25, 50, endpoint=False)
+    B = np.diag([-0.2, -0.9])
+    rec = fitdyn.simulate(B, X_STAR, [4.0, 1.0], t, process_noise=0.05, seed=1)
+    _, loose = choose_and_fit(rec, white_lag1=0.5)
+    assert loose.name == "trajectory"
+    est, _ = choose_and_fit(rec)
+    assert est.method == "discrete"
+    assert any("not white (lag-1 0.40" in n for n in auto_notes(est))
+    # the same short record with sensor noise only still goes to the output-error fit
+    rec = fitdyn.simulate(B, X_STAR, [4.0, 1.0], t, measurement_noise=0.05, seed=1)
+    assert choose_and_fit(rec)[0].method == "trajectory"
+
+
 def test_measurement_on_top_of_process_noise_avoids_the_one_step_fit():
     rec = fitdyn.simulate(
         A, X_STAR, [4.0, 1.0], T, process_noise=0.02, measurement_noise=0.05, seed=3

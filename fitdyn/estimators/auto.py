@@ -55,7 +55,9 @@ AUTO_SETTINGS: dict[str, Any] = {
     # integral residual lag-1 autocorrelation above which process noise is certain
     "process_noise_lag1": 0.95,
     # output-error residual lag-1 autocorrelation up to which the trajectory fit is kept
-    "white_lag1": 0.5,
+    # (independent sensor noise gives about 0 +- 1/sqrt(n); at 0.5, 2 % of 50-sample
+    # records with process noise passed and their intervals missed the truth)
+    "white_lag1": 0.3,
     # samples above which the nonlinear trajectory fit is skipped
     "max_trajectory_samples": 20000,
     # Ljung-Box p-value (smaller of the two channels) below which the output-error
@@ -66,8 +68,9 @@ AUTO_SETTINGS: dict[str, Any] = {
     "whiteness_lags": 10,
     # one-step residuals: the smaller of the channels' self-normalised lag-1 t
     # statistics below which measurement noise is taken to be present (one-sided,
-    # about 1 % false alarms for independent errors, the smaller of two)
-    "sensor_t": -2.5,
+    # about 0.3 % false alarms for independent errors, the smaller of two; at -2.5,
+    # 1-4 % of the process-noise-only records were sent to an instrumental fit)
+    "sensor_t": -3.0,
     # one-step fits whose fastest |Re lambda| times the median step exceeds this have
     # absorbed sensor noise as a mode that decays within a step
     "fast_mode": 3.0,
