@@ -13,8 +13,11 @@ from collections.abc import Sequence
 from typing import Any
 
 from fitdyn import __version__
+from fitdyn.analysis import CALIBRATED_REPLICATES, DEFAULT_REPLICATES
+from fitdyn.bootstrap import SCHEMES
 from fitdyn.errors import FitdynError
 from fitdyn.estimators import METHODS
+from fitdyn.estimators.derivative import DERIVATIVES
 
 __all__ = ["main", "build_parser"]
 
@@ -41,31 +44,58 @@ def _matrix(text: str) -> list[list[float]]:
     return m
 
 
+_FILE_HELP = "the recording: .csv, .tsv, .txt, .xlsx or .parquet"
+
+
 def _add_import_options(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("reading the file")
-    g.add_argument("--time", metavar="COL", help="time column (default: found by name or order)")
-    g.add_argument("--channels", metavar="A,B", help="the two channel columns")
-    g.add_argument("--trajectory", metavar="COL", help="column that names runs / replicates")
-    g.add_argument("--time-unit", metavar="UNIT", help="unit of a numeric time column")
-    g.add_argument("--sheet", metavar="NAME", help="worksheet of an .xlsx file")
+    g.add_argument(
+        "--time",
+        metavar="COL",
+        help="time column (default: found by name, else the first increasing numeric column)",
+    )
+    g.add_argument(
+        "--channels",
+        metavar="A,B",
+        help="the two channel columns (default: the two numeric columns besides time and "
+        "trajectory)",
+    )
+    g.add_argument(
+        "--trajectory",
+        metavar="COL",
+        help="column that names runs / replicates (default: found by name such as run or "
+        "replicate, else one trajectory)",
+    )
+    g.add_argument(
+        "--time-unit",
+        metavar="UNIT",
+        help="unit of the time column, e.g. s or min; timestamps are converted to it "
+        "(default: from the header, else none; s for timestamps); A and the eigenvalues "
+        "are in 1/UNIT",
+    )
+    g.add_argument(
+        "--sheet", metavar="NAME", help="worksheet of an .xlsx file (default: the first)"
+    )
     g.add_argument(
         "--repeated-times",
         choices=("average", "refuse"),
         default=None,
-        help="rows repeating a timestamp: average them (default) or stop with an error",
+        help="rows repeating a timestamp: average them or stop with an error "
+        "(choices: %(choices)s; default average)",
     )
     g.add_argument(
         "--outliers",
         choices=("flag", "drop", "ignore"),
         default=None,
-        help="outliers found by the Hampel identifier: flag and keep (default), drop, ignore",
+        help="outliers found by the Hampel identifier: flag and keep them, drop them, or "
+        "do not look (choices: %(choices)s; default flag)",
     )
     g.add_argument(
         "--gap-factor",
         type=float,
         default=None,
         metavar="K",
-        help="a step longer than K times the median step is a gap (default 3)",
+        help="a step longer than K times the median step is a gap (a number, no unit; default 3)",
     )
 
 
@@ -107,19 +137,36 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
 
     p = sub.add_parser("check", help="read and clean a recording; print what was done")
-    p.add_argument("file")
+    p.add_argument("file", help=_FILE_HELP)
     _add_import_options(p)
-    p.add_argument("--json", metavar="PATH", help="write the cleaning summary as JSON")
-    p.add_argument("--write-clean", metavar="PATH", help="write the cleaned samples as CSV")
+    p.add_argument(
+        "--json", metavar="PATH", help="write the cleaning summary as JSON (default: not written)"
+    )
+    p.add_argument(
+        "--write-clean",
+        metavar="PATH",
+        help="write the cleaned samples as CSV (default: not written)",
+    )
 
     p = sub.add_parser("fit", help="estimate A, classify the equilibrium, report")
-    p.add_argument("file")
+    p.add_argument("file", help=_FILE_HELP)
     _add_import_options(p)
-    _add_estimation_options(p, seed_help="random seed")
+    _add_estimation_options(
+        p, seed_help="random seed (default: none, fresh numbers each run)", bootstrap=1000
+    )
     o = p.add_argument_group("output")
-    o.add_argument("--json", metavar="PATH", help="write the result as JSON")
-    o.add_argument("--report", metavar="DIR", help="write a self-contained HTML report folder")
+    o.add_argument("--json", metavar="PATH", help="write the result as JSON (default: not written)")
+    o.add_argument(
+        "--report",
+        metavar="DIR",
+        help="write a self-contained HTML report folder (default: not written)",
+    )
     o.add_argument("--quiet", action="store_true", help="no progress bar, no summary")
+    o.add_argument(
+        "--verbose",
+        action="store_true",
+        help="also print how the estimator and the resampling were chosen",
+    )
 
     p = sub.add_parser("simulate", help="simulate a recording from a known linear system")
     p.add_argument(
@@ -128,15 +175,59 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="a11,a12;a21,a22",
         help="system matrix, row by row (write --matrix=... when it starts with a minus)",
     )
-    p.add_argument("--equilibrium", default="0,0", metavar="X,Y")
-    p.add_argument("--x0", required=True, metavar="X,Y", help="initial state")
-    p.add_argument("--samples", type=int, default=200, metavar="N")
-    p.add_argument("--step", type=float, default=0.1, metavar="H", help="sampling step")
-    p.add_argument("--irregular", action="store_true", help="random (sorted uniform) times")
-    p.add_argument("--trajectories", type=int, default=1, metavar="R")
-    p.add_argument("--process-noise", type=float, default=None, metavar="Q")
-    p.add_argument("--measurement-noise", type=float, default=None, metavar="SD")
-    p.add_argument("--seed", type=int, default=None, metavar="S")
+    p.add_argument(
+        "--equilibrium",
+        default="0,0",
+        metavar="X,Y",
+        help="equilibrium x*, in the channels' units (default %(default)s)",
+    )
+    p.add_argument(
+        "--x0", required=True, metavar="X,Y", help="initial state, in the channels' units"
+    )
+    p.add_argument(
+        "--samples",
+        type=int,
+        default=200,
+        metavar="N",
+        help="samples per trajectory (default %(default)s)",
+    )
+    p.add_argument(
+        "--step",
+        type=float,
+        default=0.1,
+        metavar="H",
+        help="sampling step, in the time unit of A (default %(default)s)",
+    )
+    p.add_argument(
+        "--irregular",
+        action="store_true",
+        help="random (sorted uniform) times over the same span (default: a uniform step)",
+    )
+    p.add_argument(
+        "--trajectories",
+        type=int,
+        default=1,
+        metavar="R",
+        help="independent runs from the same x0 (default %(default)s)",
+    )
+    p.add_argument(
+        "--process-noise",
+        type=float,
+        default=None,
+        metavar="Q",
+        help="diffusion rate of the process noise, in (channel unit)^2 per time unit "
+        "(default: none)",
+    )
+    p.add_argument(
+        "--measurement-noise",
+        type=float,
+        default=None,
+        metavar="SD",
+        help="standard deviation of the sensor noise, in the channels' units (default: none)",
+    )
+    p.add_argument(
+        "--seed", type=int, default=None, metavar="S", help="random seed (default: none)"
+    )
     p.add_argument("--out", required=True, metavar="PATH", help="CSV file to write")
 
     p = sub.add_parser(
@@ -157,49 +248,106 @@ def build_parser() -> argparse.ArgumentParser:
         "glob patterns such as 'runs/**/*.csv'",
     )
     _add_import_options(p)
-    _add_estimation_options(p, seed_help="master seed (each file's own seed is in the table)")
+    _add_estimation_options(
+        p,
+        seed_help="master seed; each file's own seed is in the table (default: none)",
+        bootstrap=0,
+    )
     r = p.add_argument_group("running")
-    r.add_argument("--workers", type=int, default=1, metavar="N", help="processes (default 1)")
+    r.add_argument(
+        "--workers", type=int, default=1, metavar="N", help="processes (default %(default)s)"
+    )
     r.add_argument(
         "--backend",
         choices=("process", "dask"),
         default="process",
-        help='local process pool (default) or Dask (pip install "fitdyn[dask]")',
+        help='local process pool or Dask (pip install "fitdyn[dask]") (choices: '
+        "%(choices)s; default %(default)s)",
     )
-    r.add_argument("--chunk", type=int, default=None, metavar="K", help="files per task")
+    r.add_argument(
+        "--chunk",
+        type=int,
+        default=None,
+        metavar="K",
+        help="files per task (default: chosen from the number of files and workers)",
+    )
     o = p.add_argument_group("output")
     o.add_argument("--out", required=True, metavar="PATH", help="results table (.csv, or .parquet)")
-    o.add_argument("--json-dir", metavar="DIR", help="also write each fit's JSON result here")
+    o.add_argument(
+        "--json-dir",
+        metavar="DIR",
+        help="also write each fit's JSON result here (default: not written)",
+    )
     o.add_argument("--quiet", action="store_true", help="no progress bar, no summary")
     return parser
 
 
-def _add_estimation_options(p: argparse.ArgumentParser, seed_help: str) -> None:
+def _add_estimation_options(
+    p: argparse.ArgumentParser, seed_help: str, bootstrap: int = DEFAULT_REPLICATES
+) -> None:
     g = p.add_argument_group("estimation")
     g.add_argument(
         "--method",
         default="auto",
         choices=METHODS,
-        help="estimator (default auto: chosen from the data)",
+        help="estimator (choices: %(choices)s; default %(default)s: chosen from the data)",
     )
-    g.add_argument("--equilibrium", metavar="X,Y", help="known equilibrium (default: estimate)")
-    g.add_argument("--derivative", choices=("fd", "savgol", "spline"), help="derivative method")
-    g.add_argument("--bootstrap", type=int, default=0, metavar="B", help="bootstrap replicates")
-    g.add_argument("--confidence", type=float, default=0.95, metavar="C", help="interval level")
-    g.add_argument("--seed", type=int, default=None, metavar="S", help=seed_help)
-    g.add_argument("--scheme", default="auto", help="resampling scheme (default auto)")
     g.add_argument(
-        "--interval", choices=("percentile", "bca"), default="percentile", help="interval kind"
+        "--equilibrium",
+        metavar="X,Y",
+        help="known equilibrium, in the channels' units (default: estimated)",
+    )
+    g.add_argument(
+        "--derivative",
+        choices=DERIVATIVES,
+        help="derivative method of the derivative fit (choices: %(choices)s; default: "
+        "savgol on uniform segments, local on irregular ones)",
+    )
+    calibrated = (
+        f"; intervals are calibrated from {CALIBRATED_REPLICATES} on (benchmarks/coverage.py), "
+        "fewer get a warning"
+    )
+    g.add_argument(
+        "--bootstrap",
+        type=int,
+        default=bootstrap,
+        metavar="B",
+        help="bootstrap replicates, 0 for none (no intervals, no verdict at a confidence); "
+        "default %(default)s" + calibrated,
+    )
+    g.add_argument(
+        "--confidence",
+        type=float,
+        default=0.95,
+        metavar="C",
+        help="level of the intervals and the verdict, between 0 and 1 (default %(default)s)",
+    )
+    g.add_argument("--seed", type=int, default=None, metavar="S", help=seed_help)
+    g.add_argument(
+        "--scheme",
+        default="auto",
+        choices=SCHEMES,
+        help="resampling scheme (choices: %(choices)s; default %(default)s: chosen for the "
+        "estimator)",
+    )
+    g.add_argument(
+        "--interval",
+        choices=("percentile", "bca"),
+        default="percentile",
+        help="interval kind (choices: %(choices)s; default %(default)s)",
     )
     g.add_argument(
         "--margin",
         type=float,
         default=None,
         metavar="M",
-        help="practical-equivalence margin for the boundary classes (e.g. 0.01)",
+        help="practical-equivalence margin for the boundary classes, a fraction with no "
+        "unit (relative to the largest |eigenvalue|, e.g. 0.01; default: none)",
     )
     g.add_argument(
-        "--asymptotic", action="store_true", help="fast delta-method intervals, no bootstrap"
+        "--asymptotic",
+        action="store_true",
+        help="fast delta-method intervals instead of the bootstrap (default: bootstrap)",
     )
 
 
@@ -229,6 +377,15 @@ def _estimation_options(args: argparse.Namespace) -> dict[str, Any]:
     }
 
 
+def _print(text: str) -> None:
+    """Print, replacing what the terminal's encoding cannot show (e.g. ``∞``)."""
+    try:
+        print(text)
+    except UnicodeEncodeError:
+        enc = getattr(sys.stdout, "encoding", None) or "ascii"
+        print(text.replace("∞", "inf").encode(enc, "replace").decode(enc))
+
+
 def _cmd_check(args: argparse.Namespace) -> int:
     from fitdyn.importer import read
 
@@ -256,7 +413,7 @@ def _cmd_fit(args: argparse.Namespace) -> int:
         **_read_options(args),
     )
     if not args.quiet:
-        print(result.summary())
+        _print(result.summary(verbose=args.verbose))
     if args.json:
         result.to_json(args.json)
     if args.report:

@@ -33,9 +33,10 @@ from typing import Any
 
 import numpy as np
 
-from fitdyn import __version__
+from fitdyn import __version__, fmt
 from fitdyn.atomic import replace_dir, write_bytes, write_text
 from fitdyn.errors import ReportError
+from fitdyn.verdict import a_label, join_labels
 
 __all__ = ["write_report", "render_html", "methods_text", "FORMATS", "CAUTIONS"]
 
@@ -79,20 +80,6 @@ def _num(v: Any, digits: int = 4) -> str:
     return f"{v:.{digits}g}"
 
 
-def _interval(iv: Any) -> str:
-    if iv is None:
-        return ""
-    lo, hi = (float(x) for x in iv)
-    return f"[{_num(lo)}, {_num(hi)}]"
-
-
-def _complex(z: complex) -> str:
-    if z.imag == 0:
-        return _num(z.real)
-    sign = "+" if z.imag > 0 else "−"
-    return f"{_num(z.real)} {sign} {_num(abs(z.imag))}i"
-
-
 def _unit(name: str, unit: str | None) -> str:
     return f"{name} [{unit}]" if unit else name
 
@@ -106,43 +93,47 @@ def _intervals(fit: Any) -> dict[str, Any]:
 # page content
 # ----------------------------------------------------------------------------------
 def _verdict(fit: Any) -> list[dict[str, str]]:
-    unc = fit.uncertainty
-    probs = {} if unc is None else dict(unc.class_probabilities)
-    stable = fit.stability == "asymptotically stable"
+    """The cards at the top: the verdict, stability, eigenvalues.
+
+    A card is coloured (and its value bold) only when the verdict was decided at the
+    confidence level; undetermined, unassessed or not-reliable verdicts get the
+    neutral card.
+    """
+    v = fit.verdict
+    tone = v.tone
     cells = []
-    sub = ""
-    if unc is not None:
-        p = probs.get(fit.label)
-        sub = f"P = {p:.3g} over {unc.replicates} replicates" if p is not None else ""
-        cw = list(getattr(unc, "consistent_with", []) or [])
-        if cw:
-            sub += ("; " if sub else "") + "cannot exclude: " + ", ".join(cw)
-    cells.append(
-        {
-            "what": "equilibrium type",
-            "value": fit.label,
-            "sub": sub,
-            "tone": "stable" if stable else "unstable",
-        }
-    )
-    sub = f"P(stable) = {float(unc.p_stable):.3g}" if unc is not None else "no uncertainty analysis"
-    cells.append(
-        {
-            "what": "stability",
-            "value": fit.stability,
-            "sub": sub,
-            "tone": "stable" if stable else "unstable",
-        }
-    )
-    lam = fit.eigenvalues
-    cells.append(
-        {
-            "what": "eigenvalues",
-            "value": ", ".join(_complex(complex(z)) for z in lam),
-            "sub": _rate_unit(fit) and f"in {_rate_unit(fit)}",
-            "tone": "",
-        }
-    )
+    if v.not_reliable:
+        value, sub = "not reliable", v.headline().removeprefix("not reliable: ")
+    elif not v.assessed:
+        value, sub = fit.label, "point estimate only: no uncertainty analysis (bootstrap 0)"
+    elif v.label != "undetermined":
+        value = v.label
+        sub = f"P = {fmt.prob(v.probabilities.get(v.label))} at the " + (
+            f"{100 * float(v.confidence):.0f} % level over {fit.uncertainty.replicates} replicates"
+        )
+        if v.cannot_exclude:
+            sub += "; cannot exclude " + join_labels([a_label(c) for c in v.cannot_exclude])
+    else:
+        value = "undetermined"
+        sub = v.class_text().removeprefix("undetermined: ")
+    cells.append({"what": "verdict", "value": value, "sub": sub, "tone": tone})
+    if not v.assessed:
+        stab, sub = "not assessed", f"the point estimate is {fit.stability}"
+    elif v.stability == "stable":
+        stab, sub = "asymptotically stable", f"P(stable) = {fmt.prob(v.p_stable)}"
+    elif v.stability == "unstable":
+        stab, sub = "unstable", f"P(unstable) = {fmt.prob(v.p_unstable)}"
+    else:
+        stab = "undetermined"
+        sub = f"P(stable) = {fmt.prob(v.p_stable)}, P(unstable) = {fmt.prob(v.p_unstable)}"
+    cells.append({"what": "stability", "value": stab, "sub": sub, "tone": tone})
+    ru = _rate_unit(fit)
+    values = [value for _, value, _ in fit._eig_rows()]
+    intervals = [iv for _, _, iv in fit._eig_rows() if iv]
+    sub = "; ".join(intervals) if intervals else ""
+    if ru:
+        sub = (f"in {ru}; " + sub) if sub else f"in {ru}"
+    cells.append({"what": "eigenvalues", "value": ", ".join(values), "sub": sub, "tone": ""})
     return cells
 
 
@@ -164,16 +155,67 @@ def _matrix(fit: Any) -> dict[str, Any]:
                     iv = ivs[i][j]
                 except (IndexError, TypeError, KeyError):
                     iv = None
-            cells.append({"value": _num(fit.matrix[i, j]), "interval": _interval(iv)})
+            dec = None if iv is None else fmt.decimals(*iv)
+            cells.append(
+                {"value": fmt.num(fit.matrix[i, j], dec), "interval": fmt.interval(iv, dec)}
+            )
         rows.append({"name": f"d({rec.channels[i]})/dt", "cells": cells})
     return {"columns": list(rec.channels), "rows": rows, "unit": _rate_unit(fit)}
 
 
 def _summary_rows(fit: Any) -> list[dict[str, str]]:
+    """The rows of the estimates table, every value rounded to its interval."""
     rec = fit.recording
     ivs = _intervals(fit)
     unc = fit.uncertainty
+    v = fit.verdict
     rows: list[dict[str, str]] = []
+    rows.append({"name": "Verdict", "value": v.headline()})
+    if v.assessed and v.label == "undetermined" and not v.not_reliable:
+        rows.append({"name": "Stability", "value": v.stability_text()})
+    ru = _rate_unit(fit)
+    re_iv = ivs.get("eigenvalue_real")
+    im_iv = ivs.get("eigenvalue_imag")
+    for k, (_, value, _) in enumerate(fit._eig_rows()):
+        lam = complex(fit.eigenvalues[k])
+        parts = []
+        if re_iv is not None:
+            parts.append(f"real part {fmt.interval(re_iv[k])}")
+            if lam.imag != 0 and im_iv is not None:
+                parts.append(f"imaginary part {fmt.interval(im_iv[k])}")
+        rows.append(
+            {
+                "name": f"Eigenvalue λ{k + 1}",
+                "value": fmt.with_unit(value, ru),
+                "interval": "; ".join(parts),
+            }
+        )
+    if "max_real_part" in ivs:
+        iv = ivs["max_real_part"]
+        rows.append(
+            {
+                "name": "Largest real part",
+                "value": fmt.with_unit(
+                    fmt.num(max(z.real for z in fit.eigenvalues), fmt.decimals(*iv)), ru
+                ),
+                "interval": fmt.interval(iv),
+            }
+        )
+    derived_names = {
+        "time constant": "Time constant 1/|Re λ|",
+        "time constants": "Time constants 1/|Re λ|",
+        "period": "Period 2π/|Im λ|",
+        "damping ratio": "Damping ratio −Re λ/|λ|",
+    }
+    shown = set()
+    for name, text in fit._derived_rows():
+        shown.add(name)
+        text = text.replace("lambda", "λ")
+        rows.append({"name": derived_names.get(name, name), "value": text})
+    if "period" not in shown:
+        rows.append({"name": "Period 2π/|Im λ|", "value": "none (real eigenvalues)"})
+    if "damping ratio" not in shown:
+        rows.append({"name": "Damping ratio −Re λ/|λ|", "value": "none (real eigenvalues)"})
     if fit.equilibrium is None:
         rows.append(
             {
@@ -186,99 +228,60 @@ def _summary_rows(fit: Any) -> list[dict[str, str]]:
         tag = " (given, not estimated)" if fit.estimate.equilibrium_known else ""
         eq_iv = ivs.get("equilibrium")
         for j in range(2):
+            iv = eq_iv[j] if eq_iv is not None else None
+            dec = None if iv is None else fmt.decimals(*iv)
             rows.append(
                 {
                     "name": f"Equilibrium {rec.channels[j]}*",
-                    "value": _num(fit.equilibrium[j], 6)
-                    + (f" {rec.units[j]}" if rec.units[j] else "")
-                    + tag,
-                    "interval": _interval(eq_iv[j]) if eq_iv is not None else "",
+                    "value": fmt.with_unit(fmt.num(fit.equilibrium[j], dec), rec.units[j]) + tag,
+                    "interval": fmt.interval(iv, dec),
                 }
             )
-    ru = _rate_unit(fit)
     for key, name, value in (
         ("trace", "Trace τ", fit.trace),
         ("determinant", "Determinant Δ", fit.determinant),
         ("discriminant", "Discriminant τ² − 4Δ", fit.discriminant),
     ):
-        rows.append({"name": name, "value": _num(value), "interval": _interval(ivs.get(key))})
-    re_iv = ivs.get("eigenvalue_real")
-    im_iv = ivs.get("eigenvalue_imag")
-    for k, lam in enumerate(fit.eigenvalues):
-        lam = complex(lam)
-        parts = []
-        if re_iv is not None:
-            parts.append(f"real part {_interval(re_iv[k])}")
-            if lam.imag != 0 and im_iv is not None:
-                parts.append(f"imaginary part {_interval(im_iv[k])}")
-        rows.append(
-            {
-                "name": f"Eigenvalue λ{k + 1}",
-                "value": _complex(lam) + (f" {ru}" if ru else ""),
-                "interval": "; ".join(parts),
-            }
-        )
-    if "max_real_part" in ivs:
-        rows.append(
-            {
-                "name": "Largest real part",
-                "value": _num(max(z.real for z in fit.eigenvalues)),
-                "interval": _interval(ivs["max_real_part"]),
-            }
-        )
-    tu = f" {rec.time_unit}" if rec.time_unit else ""
-    tcs = [
-        f"{_num(t)}{tu}" if np.isfinite(t) else "none (zero real part)" for t in fit.time_constants
-    ]
-    rows.append({"name": "Time constants 1/|Re λ|", "value": ", ".join(tcs)})
-    rows.append(
-        {
-            "name": "Period 2π/|Im λ|",
-            "value": f"{_num(fit.period)}{tu}"
-            if fit.period is not None
-            else "none (real eigenvalues)",
-        }
-    )
-    rows.append(
-        {
-            "name": "Damping ratio",
-            "value": _num(fit.damping_ratio)
-            if fit.damping_ratio is not None
-            else "none (real eigenvalues)",
-        }
-    )
-    value = fit.label
-    if unc is not None:
-        probs = dict(unc.class_probabilities)
-        p = probs.get(fit.label)
-        if p is not None:
-            value += f" (P = {p:.3g})"
-    rows.append({"name": "Equilibrium type", "value": value})
+        iv = ivs.get(key)
+        dec = None if iv is None else fmt.decimals(*iv)
+        rows.append({"name": name, "value": fmt.num(value, dec), "interval": fmt.interval(iv)})
     if unc is not None:
         probs = dict(unc.class_probabilities)
         listed = ", ".join(
-            f"{k} {v:.3g}" for k, v in sorted(probs.items(), key=lambda kv: -kv[1]) if v > 0
+            f"{k} {fmt.prob(p)}" for k, p in sorted(probs.items(), key=lambda kv: -kv[1]) if p > 0
         )
         rows.append({"name": "Class probabilities", "value": listed or "-"})
         cw = list(getattr(unc, "consistent_with", []) or [])
         if cw:
-            rows.append({"name": "Cannot exclude", "value": ", ".join(cw)})
-    stab = fit.stability
-    note = ""
-    if unc is not None:
-        stab += f"; P(stable) = {float(unc.p_stable):.3g}"
+            rows.append(
+                {
+                    "name": "Cannot exclude",
+                    "value": ", ".join(cw),
+                    "note": "boundary classes inside the intervals (they have no probability "
+                    "of their own)",
+                }
+            )
         failed = int(getattr(unc, "failed_replicates", 0) or 0)
         upper = float(getattr(unc, "p_stable_upper", float("nan")))
         if failed and np.isfinite(upper):
-            note = (
-                f"{failed} replicate(s) failed; counting them as stable would give "
-                f"P(stable) = {upper:.3g}"
+            rows.append(
+                {
+                    "name": "Failed replicates",
+                    "value": str(failed),
+                    "note": f"counting them as stable would give P(stable) = {fmt.prob(upper)}",
+                }
             )
-    rows.append({"name": "Stability", "value": stab, "note": note})
+    rows.append(
+        {
+            "name": "Point label",
+            "value": f"{fit.label} ({fit.stability})",
+            "note": "the class of the point estimate alone, without its uncertainty",
+        }
+    )
     mprobs = getattr(unc, "margin_probabilities", None) if unc is not None else None
     if mprobs:
         listed = ", ".join(
-            f"{k} {v:.3g}" for k, v in sorted(mprobs.items(), key=lambda kv: -kv[1]) if v > 0
+            f"{k} {fmt.prob(p)}" for k, p in sorted(mprobs.items(), key=lambda kv: -kv[1]) if p > 0
         )
         rows.append(
             {
@@ -288,22 +291,15 @@ def _summary_rows(fit: Any) -> list[dict[str, str]]:
                 f"{_num(getattr(unc, 'margin', None))}",
             }
         )
-    if unc is not None and getattr(unc, "bias_corrected", False):
-        pm = np.asarray(getattr(unc, "point_matrix", np.full((2, 2), np.nan)), dtype=float)
-        if np.all(np.isfinite(pm)):
-            rows.append(
-                {
-                    "name": "Bias-corrected A",
-                    "value": "; ".join(", ".join(_num(v) for v in r) for r in pm),
-                    "note": "the intervals are centred on this matrix",
-                }
-            )
+    rows.append({"name": "Point estimate", "value": fit._point_estimate_text()})
     if unc is not None:
+        what = "draws" if getattr(unc, "method", "") == "delta" else "replicates"
         rows.append(
             {
                 "name": "Uncertainty",
-                "value": f"{unc.replicates} replicates, scheme {unc.scheme}, "
-                f"{100 * float(unc.confidence):.0f} % intervals, seed {unc.seed}"
+                "value": f"{unc.replicates} {what}, scheme {unc.scheme}, "
+                f"{100 * float(unc.confidence):.0f} % {getattr(unc, 'method', 'percentile')} "
+                f"intervals, seed {unc.seed}"
                 + ("; bias-corrected" if getattr(unc, "bias_corrected", False) else ""),
             }
         )

@@ -85,7 +85,9 @@ def test_check_prints_summary_and_writes_json(tmp_path, capsys):
 def test_fit_prints_summary_and_json(tmp_path, capsys):
     f = _write_csv(tmp_path / "r.csv")
     out_json = tmp_path / "fit.json"
-    code, out, err = run(["fit", f, "--method", "integral", "--json", out_json], capsys)
+    code, out, err = run(
+        ["fit", f, "--method", "integral", "--bootstrap", "0", "--json", out_json], capsys
+    )
     assert code == 0, err
     assert "stable node" in out
     d = json.loads(out_json.read_text())
@@ -102,7 +104,7 @@ def test_every_registered_method_is_an_option(tmp_path, capsys, method):
     out_json = tmp_path / "fit.json"
     code, out, err = run(
         ["fit", DEMO / "chamber_cooling.csv", "--method", method, "--gap-factor", "1.5",
-         "--outliers", "drop", "--json", out_json, "--quiet"],
+         "--outliers", "drop", "--json", out_json, "--quiet", "--bootstrap", "0"],
         capsys,
     )  # fmt: skip
     assert code == 0, err
@@ -133,7 +135,7 @@ def test_simulate_writes_a_readable_csv(tmp_path, capsys):
         capsys,
     )
     assert code == 0, err
-    code, text, err = run(["fit", out, "--method", "integral"], capsys)
+    code, text, err = run(["fit", out, "--method", "integral", "--bootstrap", "0"], capsys)
     assert code == 0, err
     assert "stable spiral" in text
 

@@ -52,7 +52,7 @@ def test_defect_rows_are_named_in_the_log(name):
 @pytest.mark.parametrize("name", FILES)
 def test_demo_files_get_their_true_class(name):
     truth = EXPECTED[name]["truth"]
-    res = fitdyn.fit(DEMO / name)
+    res = fitdyn.fit(DEMO / name, bootstrap=0)
     assert res.label == truth["class"]
     lam_true = np.array([complex(re, im) for re, im in truth["eigenvalues"]])
     lam_true = fitdyn.linalg2.sort_eigenvalues(lam_true[None])[0]

@@ -105,7 +105,7 @@ def fake_uncertainty(A, b, B=400, sd=0.03, seed=5, confidence=0.95):
 
 @pytest.fixture(scope="module")
 def spiral_fit():
-    return fitdyn.fit(spiral_recording(), method="integral")
+    return fitdyn.fit(spiral_recording(), method="integral", bootstrap=0)
 
 
 @pytest.fixture(scope="module")
@@ -117,7 +117,7 @@ def spiral_fit_unc(spiral_fit):
 @pytest.fixture(scope="module")
 def chamber_fit():
     # demo file: one flagged outlier (and one repeated timestamp merged away)
-    return fitdyn.fit(DEMO / "chamber_cooling.csv", method="integral")
+    return fitdyn.fit(DEMO / "chamber_cooling.csv", method="integral", bootstrap=0)
 
 
 @pytest.fixture(scope="module")
@@ -200,7 +200,7 @@ def test_phase_marks_outliers_and_draws_slow_and_fast_directions(chamber_fit):
 
 def test_saddle_directions_say_growing_and_decaying():
     rec = fitdyn.simulate(A_SADDLE, [0.5, -0.5], [0.9, -0.2], np.linspace(0, 1.2, 61), seed=0)
-    res = fitdyn.fit(rec, method="integral")
+    res = fitdyn.fit(rec, method="integral", bootstrap=0)
     assert res.label == "saddle"
     ax = plots.plot(res, "phase")
     texts = legend_texts(ax)
@@ -326,7 +326,7 @@ def test_tracedet_region_labels_follow_the_classification():
     # each region label must sit in the region whose class it names
     for A in (A_SPIRAL, A_NODE, A_SADDLE):
         rec = fitdyn.simulate(A, [0.0, 0.0], [1.0, 0.5], np.linspace(0, 1, 21), seed=0)
-        res = fitdyn.fit(rec, method="integral")
+        res = fitdyn.fit(rec, method="integral", bootstrap=0)
         ax = plots.plot(res, "tracedet")
         for label, text in ax.region_texts.items():
             t, d = text.get_position()
@@ -409,7 +409,7 @@ def test_dollar_signs_in_names_are_shown_literally():
     # "$...$" would start matplotlib's mathtext; an unbalanced "\frac" would not parse
     rec = spiral_recording(trajectories=1)
     rec = dataclasses.replace(rec, channels=(r"cost $\frac{$", "b"), units=("$", None))
-    res = fitdyn.fit(rec, method="integral")
+    res = fitdyn.fit(rec, method="integral", bootstrap=0)
     for kind in plots.KINDS:
         out = plots.plot(res, kind)
         fig = out if isinstance(out, Figure) else out.figure
@@ -422,7 +422,7 @@ def test_singular_matrix_has_no_equilibrium_but_still_draws():
     # a line of equilibria: A = [[-1, 1], [1, -1]] has det 0 (common practice, no source)
     A = np.array([[-1.0, 1.0], [1.0, -1.0]])
     rec = fitdyn.simulate(A_NODE, [0.0, 0.0], [1.0, 0.5], np.linspace(0, 3, 16), seed=0)
-    base = fitdyn.fit(rec, method="integral")
+    base = fitdyn.fit(rec, method="integral", bootstrap=0)
     est = dataclasses.replace(
         base.estimate, matrix=A, offset=np.array([0.5, -0.5]), equilibrium=None
     )

@@ -90,11 +90,17 @@ def test_page_shows_numbers_log_methods_and_cautions(report_dir, boot_fit):
     html = (report_dir / "index.html").read_text(encoding="utf-8")
     unc = boot_fit.uncertainty
     assert boot_fit.label in html
-    for v in boot_fit.matrix.ravel():
-        assert f"{v:.4g}" in html
+    # values rounded to two significant digits of their interval's width (common
+    # practice, no source)
+    mi = unc.intervals["matrix"]
+    for (i, j), v in np.ndenumerate(boot_fit.matrix):
+        lo, hi = mi[i][j]
+        d = 1 - int(np.floor(np.log10(hi - lo)))
+        assert f"{v:.{max(d, 0)}f}" in html
     lo, hi = unc.intervals["trace"]
-    assert f"[{lo:.4g}, {hi:.4g}]" in html
-    assert f"P(stable) = {unc.p_stable:.3g}" in html
+    d = 1 - int(np.floor(np.log10(hi - lo)))
+    assert f"[{lo:.{d}f}, {hi:.{d}f}]" in html
+    assert f"P(stable) = {unc.p_stable:.2f}" in html
     # cleaning log counts
     log = boot_fit.recording.log
     assert re.search(rf"<th>Input rows</th><td class=\"num\">{log.input_rows}</td>", html)
@@ -116,7 +122,7 @@ def test_methods_name_the_derivative_rule_and_no_uncertainty():
     rec = fitdyn.simulate(
         [[-0.5, 0.2], [0.1, -0.3]], [1.0, 0.0], [3.0, 2.0], np.linspace(0, 10, 101), seed=0
     )
-    res = fitdyn.fit(rec, method="derivative", settings={"derivative": "savgol"})
+    res = fitdyn.fit(rec, method="derivative", settings={"derivative": "savgol"}, bootstrap=0)
     paras, refs = report.methods_text(res)
     text = " ".join(paras)
     assert "Savitzky–Golay" in text and "Savitzky & Golay, 1964" in text
@@ -208,7 +214,7 @@ def xss_dir(tmp_path_factory):
         trajectory_names=("<img src=x onerror=alert(2)>", "b&b"),
         log=dataclasses.replace(rec.log, source=source, notes=("<em>note</em>",)),
     )
-    res = fitdyn.fit(rec, method="integral")
+    res = fitdyn.fit(rec, method="integral", bootstrap=0)
     assert res.recording.channels[0] == XSS
     out = d / "report"
     report.write_report(res, out, kinds=("phase", "series"))
