@@ -42,6 +42,19 @@ CAUTION = (
 )
 
 
+def _items(prefix: str, items: list[str], width: int = 96) -> list[str]:
+    """``items`` joined by commas after ``prefix``, broken between items only."""
+    lines, cur = [], prefix
+    for k, item in enumerate(items):
+        piece = item + ("," if k < len(items) - 1 else "")
+        if cur.strip() and len(cur) + 1 + len(piece) > width:
+            lines.append(cur.rstrip())
+            cur = " " * len(prefix)
+        cur += ("" if cur.endswith(" ") else " ") + piece
+    lines.append(cur.rstrip())
+    return lines
+
+
 def _wrap(prefix: str, text: str, indent: str | None = None, width: int = 96) -> list[str]:
     """``text`` wrapped after ``prefix``, continuation lines indented to match."""
     pad = " " * len(prefix) if indent is None else indent
@@ -432,7 +445,10 @@ class Fit:
             "time constants": "  (1/|Re lambda1|; 1/|Re lambda2|)",
         }
         for name, text in self._derived_rows():
-            lines.extend(_wrap(f"  {name:<15}", text + hints.get(name, "")))
+            hint = hints.get(name, "")
+            if len(text) + len(hint) > 96 - 17 or fmt.INF in text:
+                hint = ""
+            lines.extend(_wrap(f"  {name:<15}", text + hint))
         lines.append("")
         lines.extend(_wrap("Point estimate   ", self._point_estimate_text()))
         lines.append("")
@@ -463,22 +479,22 @@ class Fit:
             )
             tag = " (given, not estimated)" if self.estimate.equilibrium_known else ""
             lines.append(f"Equilibrium x*   {eq}{tag}")
-        inv = ", ".join(
+        inv = [
             f"{name} {fmt.value_interval(val, ivs.get(name))}"
             for name, val in (
                 ("trace", self.trace),
                 ("determinant", self.determinant),
                 ("discriminant", self.discriminant),
             )
-        )
-        lines.extend(_wrap("Invariants       ", inv))
-        vecs = "; ".join(
+        ]
+        lines.extend(_items("Invariants       ", inv))
+        vecs = [
             f"v{k + 1} ("
             + ", ".join(fmt.complex_value(complex(z)) for z in self.eigenvectors[:, k])
             + ")"
             for k in range(2)
-        )
-        lines.append(f"Eigenvectors     {vecs}  (point estimate)")
+        ]
+        lines.extend(_items("Eigenvectors     ", [*vecs[:1], vecs[1] + " (point estimate)"]))
         if unc is not None:
             probs = ", ".join(
                 f"{k} {fmt.prob(p)}"

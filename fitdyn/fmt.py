@@ -131,10 +131,19 @@ def complex_value(z: complex, re_iv: Any = None, im_iv: Any = None) -> str:
 
 
 def prob(p: Any) -> str:
-    """A probability with two decimals (``-`` when missing)."""
+    """A probability with two decimals (``-`` when missing).
+
+    Never rounds to certainty or to impossibility: a probability strictly between 0
+    and 0.005 is ``< 0.01`` and one strictly between 0.995 and 1 is ``> 0.99``.
+    """
     if not _finite(p):
         return "-"
-    return f"{float(p):.2f}"
+    x = float(p)
+    if 0 < x < 0.005:
+        return "< 0.01"
+    if 0.995 <= x < 1:
+        return "> 0.99"
+    return f"{x:.2f}"
 
 
 def rate_unit(time_unit: str | None) -> str:

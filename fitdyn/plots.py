@@ -6,23 +6,27 @@ One entry point, :func:`plot`, draws one of the :data:`KINDS`:
     Phase plane: the cleaned samples of each trajectory (flagged outliers marked),
     the fitted trajectories through them, the flow of the fitted matrix, the
     nullclines, the equilibrium with its confidence region and, for real
-    eigenvalues, the slow and fast eigen directions.  Returns the Axes.
+    eigenvalues, the slow and fast eigen directions (one panel).
 ``"series"``
     Each channel against time with the fitted curve of every trajectory, and the
-    residuals (data minus fitted curve) beneath on the same time axis.  Returns the
-    Figure (four panels).
+    residuals (data minus fitted curve) beneath on the same time axis (four
+    panels).
 ``"eigen"``
     Eigenvalue plane: the point estimates, the bootstrap cloud and its confidence
     regions; the imaginary axis is the stability boundary and the unstable half-plane
-    is shaded.  Returns the Axes.
+    is shaded (one panel).
 ``"tracedet"``
     Trace-determinant plane: the class regions bounded by the axes and the parabola
     ``trace^2 = 4 det``, the estimate and the bootstrap cloud, every region labelled
-    with its class and (with uncertainty) its probability.  Returns the Axes.
+    with its class and (with uncertainty) its probability (one panel).
 ``"residuals"``
     Autocorrelation of the estimator's residuals per channel with the
     ``+-1.96 / sqrt(n)`` band and the Ljung-Box p-value (Ljung & Box, Biometrika
-    1978).  Returns the Figure (two panels).
+    1978) (two panels).
+
+Every kind returns the same type: the matplotlib :class:`~matplotlib.figure.Figure`
+it drew on (the top-level Figure, also when an Axes or a SubFigure was passed);
+its panels are ``fig.axes``.
 
 The kinds that need the uncertainty analysis (``"eigen"``, ``"tracedet"``, the
 equilibrium region of ``"phase"``) draw the point estimate only, with a note, when
@@ -1310,8 +1314,9 @@ def plot(fit: Any, kind: str = "phase", ax: Any = None, **kwargs: Any) -> Any:
 
     Returns
     -------
-    matplotlib Axes (``"phase"``, ``"eigen"``, ``"tracedet"``) or Figure
-    (``"series"``, ``"residuals"``).
+    matplotlib.figure.Figure
+        For every kind: the top-level Figure drawn on (when ``ax`` is an Axes or a
+        SubFigure, the Figure holding it); the panels are ``fig.axes``.
 
     Raises
     ------
@@ -1323,4 +1328,15 @@ def plot(fit: Any, kind: str = "phase", ax: Any = None, **kwargs: Any) -> Any:
     import matplotlib
 
     with matplotlib.rc_context(STYLE):
-        return _DRAW[kind](fit, ax, **kwargs)
+        out = _DRAW[kind](fit, ax, **kwargs)
+    return _root_figure(out)
+
+
+def _root_figure(obj: Any) -> Any:
+    """The top-level Figure of an Axes, SubFigure or Figure."""
+    from matplotlib.figure import Figure
+
+    fig = obj if hasattr(obj, "savefig") else obj.figure
+    while not isinstance(fig, Figure):
+        fig = fig.figure
+    return fig

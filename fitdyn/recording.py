@@ -223,7 +223,7 @@ def describe_sampling(
     }
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False)
 class Recording:
     """Cleaned samples of two channels, ready for estimation.
 
@@ -447,3 +447,14 @@ class Recording:
 
     def __str__(self) -> str:
         return self.summary()
+
+    def __repr__(self) -> str:
+        chans = ", ".join(
+            f"{c} [{u}]" if u else c for c, u in zip(self.channels, self.units, strict=True)
+        )
+        R = self.n_trajectories
+        return (
+            f"<Recording {self.source or 'in-memory data'}: {chans}; {self.n_samples} samples "
+            f"in {R} trajector{'y' if R == 1 else 'ies'}, {self.n_gaps} gap(s); "
+            f"time unit {self.time_unit or 'not given'}>"
+        )

@@ -116,3 +116,64 @@ def test_data_along_one_eigenvector_give_a_clear_error():
     rec = _noise_free(A, [0.0, 0.0], 2 * v, np.linspace(0, 2, 81))
     with pytest.raises(EstimationError, match="collinear"):
         fitdyn.fit(rec, method="integral", bootstrap=0)
+
+
+# ----------------------------------------------------------------------------------
+# defaults, warnings and the short views (issue: honest verdicts by default)
+# ----------------------------------------------------------------------------------
+def _node_rec(noise=0.01):
+    return fitdyn.simulate(
+        A_NODE, [0.5, -0.5], [2.0, 1.0], np.linspace(0, 10, 201), measurement_noise=noise, seed=3
+    )
+
+
+def test_intervals_are_computed_by_default_with_the_calibrated_count():
+    from fitdyn.analysis import CALIBRATED_REPLICATES, DEFAULT_REPLICATES
+
+    res = fitdyn.fit(_node_rec(), method="integral", seed=1, quiet=True)
+    assert res.uncertainty is not None
+    assert res.uncertainty.replicates == DEFAULT_REPLICATES == 1000
+    assert CALIBRATED_REPLICATES == 500
+    assert not any("bootstrap replicates" in w for w in res.warnings)
+    assert res.to_dict()["verdict"]["confidence"] == 0.95
+    # the docstring states the default and where it comes from
+    assert "Default 1000" in fitdyn.fit.__doc__ and "500" in fitdyn.fit.__doc__
+
+
+def test_too_few_replicates_get_a_warning_and_zero_none():
+    res = fitdyn.fit(_node_rec(), method="integral", bootstrap=100, seed=1, quiet=True)
+    assert any("only 100 bootstrap replicates" in w and "500" in w for w in res.warnings)
+    assert "only 100 bootstrap replicates" in res.summary()
+    res0 = fitdyn.fit(_node_rec(), method="integral", bootstrap=0)
+    assert res0.uncertainty is None
+    assert not any("bootstrap replicates" in w for w in res0.warnings)
+    v = res0.to_dict()["verdict"]
+    assert v["confidence"] is None and v["candidates"] == [] and v["label"] == res0.label
+    assert "stability not assessed" in res0.summary()
+
+
+def test_summary_answers_first_and_shows_derived_intervals():
+    res = fitdyn.fit(_node_rec(), method="integral", bootstrap=500, seed=1, quiet=True)
+    lines = [ln for ln in res.summary().splitlines() if ln.strip()]
+    assert lines[1].startswith("Verdict ")
+    assert lines[2].startswith("Eigenvalues")
+    assert lines[3].strip().startswith("lambda1") and "Re [" in lines[3]
+    tc = next(ln for ln in lines if ln.strip().startswith("time constants"))
+    assert tc.count("[") == 2  # both time constants carry their intervals
+    # selection notes only with verbose
+    quiet_text, loud = res.summary(), res.summary(verbose=True)
+    assert "How the estimate was made" not in quiet_text
+    assert "How the estimate was made" in loud
+    for note in res.estimate.notes:
+        assert note.split()[0] in loud
+    # the point estimate is named
+    assert "Point estimate   the fitted A (JSON 'matrix')" in quiet_text
+
+
+def test_short_reprs():
+    res = fitdyn.fit(_node_rec(), method="integral", bootstrap=0)
+    for obj in (res, res.recording):
+        r = repr(obj)
+        assert "\n" not in r and len(r) < 200 and "array(" not in r
+    assert repr(res).startswith("<Fit simulated: integral, stable node (point estimate)")
+    assert repr(res.recording).startswith("<Recording simulated: x1, x2; 201 samples in 1 ")

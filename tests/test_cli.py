@@ -152,3 +152,57 @@ def test_console_entry_points_run():
     )
     assert res.returncode == 2
     assert "Traceback" not in res.stderr
+
+
+def _subparsers():
+    import argparse
+
+    from fitdyn.cli import build_parser
+
+    parser = build_parser()
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    return sub.choices
+
+
+def test_every_option_states_its_default_and_choices():
+    import argparse
+
+    for name, p in _subparsers().items():
+        for act in p._actions:
+            if not act.option_strings or isinstance(act, argparse._HelpAction):
+                continue
+            text = act.help % {"default": act.default, "choices": ", ".join(act.choices or ())}
+            assert text, (name, act.dest)
+            if act.choices:
+                assert all(str(c) in text for c in act.choices), (name, act.dest)
+            flag = isinstance(act, argparse._StoreTrueAction)
+            if not (act.required or flag):
+                assert "default" in text, (name, act.dest, text)
+
+
+def test_bootstrap_defaults_fit_1000_batch_0(capsys):
+    sub = _subparsers()
+    assert sub["fit"].parse_args(["x.csv"]).bootstrap == 1000
+    assert sub["batch"].parse_args(["x.csv", "--out", "t.csv"]).bootstrap == 0
+    assert sub["fit"].parse_args(["x.csv"]).verbose is False
+    with pytest.raises(SystemExit):
+        main(["fit", "--help"])
+    out = capsys.readouterr().out
+    assert "default 1000" in out and "calibrated from 500" in out
+    assert "--verbose" in out
+
+
+def test_fit_summary_answers_first_and_verbose_adds_the_notes(tmp_path, capsys):
+    f = _write_csv(tmp_path / "r.csv")
+    code, out, err = run(["fit", f, "--bootstrap", "200", "--seed", "1"], capsys)
+    assert code == 0, err
+    lines = [ln for ln in out.splitlines() if ln.strip()]
+    assert lines[1].startswith("Verdict          stable node (P ")
+    assert lines[2].startswith("Eigenvalues")
+    assert "auto:" not in out  # the estimator-selection notes need --verbose
+    assert "only 200 bootstrap replicates" in out
+    code, loud, err = run(["fit", f, "--bootstrap", "200", "--seed", "1", "--verbose"], capsys)
+    assert code == 0, err
+    assert "How the estimate was made" in loud and "auto:" in loud
+    # the answer still comes first
+    assert [ln for ln in loud.splitlines() if ln.strip()][1] == lines[1]
