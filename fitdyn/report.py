@@ -591,6 +591,28 @@ def methods_text(fit: Any) -> tuple[list[str], list[str]]:
         f"({fit.stability}); boundary classes such as centers and stars were "
         f"assigned only within a relative tolerance of {fit.rtol:g}."
     )
+    v = fit.verdict
+    if v.assessed:
+        level = f"{100 * float(v.confidence):.0f} %"
+        if v.label != "undetermined":
+            p2 += (
+                f" At the {level} level the replicates support this class "
+                f"(P = {fmt.prob(v.probabilities.get(v.label))})."
+            )
+        else:
+            probable = [c for c in v.candidates if c in v.probabilities]
+            p2 += (
+                f" At the {level} level the data do not decide the class: it is "
+                f"{join_labels(probable)} ("
+                + " / ".join(f"P = {fmt.prob(v.probabilities[c])}" for c in probable)
+                + ")"
+                + (
+                    "; a boundary class cannot be excluded (" + ", ".join(v.cannot_exclude) + ")"
+                    if v.cannot_exclude
+                    else ""
+                )
+                + "."
+            )
     p3 = " ".join(_uncertainty_sentences(fit, refs))
     refs.append("ljungbox")
     p4 = (

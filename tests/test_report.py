@@ -333,3 +333,28 @@ def test_chromium_keeps_markup_in_names_inert(xss_dir, tmp_path):
     result = _probe(xss_dir / "index.html", tmp_path)
     assert result["scripts"] == 1  # no script element came from the data
     assert result["loaded"] == result["images"] == 2
+
+
+def test_one_point_estimate_is_named_and_the_bias_corrected_matrix_explained():
+    # short record with process noise: the one-step fit is bias-corrected by default
+    rec = fitdyn.simulate(
+        [[-0.5, -1.0], [1.0, -0.5]], [0, 0], [1.0, 0.0], np.arange(80) * 0.1,
+        process_noise=0.01, seed=2,
+    )  # fmt: skip
+    res = fitdyn.fit(rec, method="discrete", bootstrap=500, seed=1, quiet=True)
+    unc = res.uncertainty
+    assert unc.bias_corrected
+    shown = "; ".join(", ".join(f"{v:.4g}" for v in row) for row in unc.point_matrix)
+    rows = {r["name"]: r["value"] for r in report._summary_rows(res)}
+    assert "Bias-corrected A" not in rows  # no second, unexplained matrix
+    text = rows["Point estimate"]
+    assert text.startswith("the fitted A (JSON 'matrix')")
+    assert f"bias-corrected A = [{shown}]" in text and "shown only to explain" in text
+    assert "bias-corrected A = [" in res.summary()
+    # the JSON keeps both, at full precision
+    d = res.to_dict()
+    assert d["matrix"] == res.matrix.tolist()
+    assert d["uncertainty"]["point_matrix"] == unc.point_matrix.tolist()
+    # the methods paragraph says what the replicates support
+    paras, _ = report.methods_text(res)
+    assert "At the 95 % level the replicates support this class" in paras[1]

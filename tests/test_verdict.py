@@ -173,6 +173,12 @@ def test_spiral_near_a_center_reads_undetermined_everywhere(near_center, tmp_pat
     # the notebook view too
     view = res._repr_html_()
     assert "undetermined: stable or unstable spiral" in view and "neutral" in view
+    assert "font-weight:normal" in view
+    assert "1/s" in view and view.count(" bar") >= 2  # units of A, lambda and x*
+    assert "∞ (unbounded" in view
+    # and the methods paragraph does not claim a class
+    paras, _ = report.methods_text(res)
+    assert "the data do not decide the class" in paras[1]
 
 
 def test_time_constant_is_unbounded_when_the_real_part_may_be_zero(near_center):
