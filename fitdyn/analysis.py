@@ -623,7 +623,14 @@ class Fit:
         )
 
     def plot(self, kind: str = "phase", ax: Any = None, **kwargs: Any) -> Any:
-        """Draw one figure (see :mod:`fitdyn.plots` for the kinds)."""
+        """Draw one figure (see :mod:`fitdyn.plots` for the kinds).
+
+        Returns
+        -------
+        matplotlib.figure.Figure
+            The same type for every kind: the Figure drawn on (its panels are
+            ``fig.axes``).
+        """
         from fitdyn import plots
 
         return plots.plot(self, kind, ax=ax, **kwargs)
