@@ -42,7 +42,7 @@ CAUTION = (
 )
 
 
-def _items(prefix: str, items: list[str], width: int = 96) -> list[str]:
+def _items(prefix: str, items: list[str], width: int = 100) -> list[str]:
     """``items`` joined by commas after ``prefix``, broken between items only."""
     lines, cur = [], prefix
     for k, item in enumerate(items):
@@ -55,7 +55,7 @@ def _items(prefix: str, items: list[str], width: int = 96) -> list[str]:
     return lines
 
 
-def _wrap(prefix: str, text: str, indent: str | None = None, width: int = 96) -> list[str]:
+def _wrap(prefix: str, text: str, indent: str | None = None, width: int = 100) -> list[str]:
     """``text`` wrapped after ``prefix``, continuation lines indented to match."""
     pad = " " * len(prefix) if indent is None else indent
     return textwrap.wrap(
@@ -422,14 +422,9 @@ class Fit:
         ru = fmt.rate_unit(rec.time_unit)
         src = rec.source or "in-memory data"
         lines = [f"fitdyn {__version__} -- linear fit near an equilibrium: {src}", ""]
-        lines.append(f"Verdict          {v.headline()}")
-        if v.not_reliable or (v.assessed and v.label == "undetermined"):
-            lines.append(f"Stability        {v.stability_text()}")
-        elif not v.assessed:
-            lines.append(
-                f"Point estimate   {self.label}, {self.stability} (no intervals: the "
-                "data's uncertainty was not assessed; use bootstrap > 0)"
-            )
+        lines.extend(_wrap("Verdict          ", v.headline()))
+        if v.not_reliable or not v.assessed or v.label == "undetermined":
+            lines.extend(_wrap("Stability        ", v.stability_text()))
         head = "Eigenvalues"
         parts = [p for p in (ru, unc and f"{100 * unc.confidence:.0f} % intervals") if p]
         if parts:
@@ -446,7 +441,7 @@ class Fit:
         }
         for name, text in self._derived_rows():
             hint = hints.get(name, "")
-            if len(text) + len(hint) > 96 - 17 or fmt.INF in text:
+            if len(text) + len(hint) > 100 - 17 or fmt.INF in text:
                 hint = ""
             lines.extend(_wrap(f"  {name:<15}", text + hint))
         lines.append("")
@@ -525,7 +520,7 @@ class Fit:
         how = "chosen automatically from the data" if chosen else "as asked"
         more = "the reasons" if chosen else "the estimator's notes"
         method_text = f"{self.method}, {how}" + (
-            "" if verbose else f" (--verbose or summary(verbose=True) lists {more})"
+            "" if verbose else f" ({more}: --verbose, or summary(verbose=True))"
         )
         lines.extend(_wrap("Method           ", method_text))
         if self.warnings:
@@ -557,7 +552,7 @@ class Fit:
         label = v.label if v.assessed else f"{self.label} (point estimate)"
         return (
             f"<Fit {rec.source or 'in-memory data'}: {self.method}, {label}, "
-            f"stability {v.stability if v.assessed else 'not assessed'}{extra}>"
+            f"stability {v.stability}{extra}>"
         )
 
     def _repr_html_(self) -> str:

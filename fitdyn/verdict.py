@@ -14,8 +14,9 @@ at the chosen confidence ``c``:
 ``P(stable)`` counts failed replicates as not stable and ``P(unstable)`` counts them
 as not unstable (``1 - p_stable_upper``), so a failed replicate never helps either
 verdict.  Without an uncertainty analysis there is no confidence: the verdict carries
-the point estimate's class and stability with ``confidence`` None and no candidates,
-and the text says that stability was not assessed.
+the point estimate's class with ``confidence`` None, no candidates and stability
+``"not assessed"`` (the point estimate's own stability stays in ``point_stability``
+and in the JSON ``classification``).
 
 A fit whose adequacy checks failed (``fit.diagnostics`` entries with ``verdict ==
 "fail"``) is headlined "not reliable" with the failed checks and their advice instead
@@ -38,8 +39,6 @@ __all__ = ["Verdict", "verdict_of", "join_labels", "a_label"]
 
 #: Slack for comparing a probability with the confidence level (replicate fractions).
 _EPS = 1e-9
-
-_POINT_STABILITY = {"asymptotically stable": "stable", "unstable": "unstable"}
 
 
 def a_label(label: str) -> str:
@@ -74,8 +73,9 @@ class Verdict:
     Attributes
     ----------
     stability : str
-        ``"stable"``, ``"unstable"`` or ``"undetermined"`` (with no uncertainty
-        analysis: the point estimate's, ``"undetermined"`` on the boundary).
+        ``"stable"``, ``"unstable"`` or ``"undetermined"``; ``"not assessed"``
+        without an uncertainty analysis (the point estimate's stability is then in
+        ``point_stability``).
     label : str
         A class of :data:`fitdyn.classify.LABELS` or ``"undetermined"``.
     candidates : tuple of str
@@ -203,7 +203,7 @@ class Verdict:
 
         Layout::
 
-            {"stability": "stable" | "unstable" | "undetermined",
+            {"stability": "stable" | "unstable" | "undetermined" | "not assessed",
              "label": <class> | "undetermined",
              "candidates": [label, ...], "confidence": c or null,
              "basis": "uncertainty analysis" | "point estimate",
@@ -246,7 +246,7 @@ def verdict_of(fit: Any) -> Verdict:
     unc = getattr(fit, "uncertainty", None)
     if unc is None:
         return Verdict(
-            stability=_POINT_STABILITY.get(fit.stability, "undetermined"),
+            stability="not assessed",
             label=fit.label,
             candidates=(),
             confidence=None,

@@ -87,7 +87,9 @@ def test_unstable_and_failed_replicates_count_against_both_verdicts():
 def test_without_uncertainty_there_is_no_confidence():
     v = verdict_of(_stand_in(None, "unstable node", "unstable"))
     assert v.confidence is None and v.candidates == () and not v.assessed
-    assert v.label == "unstable node" and v.stability == "unstable"
+    assert v.label == "unstable node" and v.stability == "not assessed"
+    assert v.point_stability == "unstable"
+    assert "the point estimate is unstable" in v.stability_text()
     assert "not assessed" in v.headline() and "point estimate" in v.headline()
     assert v.to_dict()["confidence"] is None and v.to_dict()["candidates"] == []
     assert v.tone == "neutral"
@@ -153,9 +155,9 @@ def test_spiral_near_a_center_reads_undetermined_everywhere(near_center, tmp_pat
     assert {"stable spiral", "unstable spiral", "center"} <= set(v.candidates)
     # the text says so, with the probabilities of both spirals
     text = res.summary()
-    first = [ln for ln in text.splitlines() if ln.strip()][1]
-    assert first.startswith("Verdict          undetermined: stable or unstable spiral (P ")
-    assert "cannot exclude a center" in first
+    first = " ".join(text.split("\nStability")[0].split("\n\n", 1)[1].split())
+    assert first.startswith("Verdict undetermined: stable or unstable spiral (P ")
+    assert first.endswith("cannot exclude a center")
     assert "Stability        undetermined (P(stable) " in text
     assert "asymptotically stable" not in text.split("Point estimate")[0]
     # JSON
