@@ -370,8 +370,11 @@ class Fit:
         )
         if unc is None:
             return text + " No uncertainty analysis was run, so nothing has a confidence."
-        what = "draws" if getattr(unc, "method", "") == "delta" else "replicates"
-        text += f" Verdict, probabilities and intervals: {unc.replicates} {what} ({unc.scheme})"
+        if getattr(unc, "method", "") == "delta":
+            what = "draws from the asymptotic (delta-method) distribution"
+        else:
+            what = f"{unc.scheme} bootstrap replicates"
+        text += f" Verdict, probabilities and intervals: {unc.replicates} {what}"
         pm = np.asarray(getattr(unc, "point_matrix", np.full((2, 2), np.nan)), dtype=float)
         if not (getattr(unc, "bias_corrected", False) and np.all(np.isfinite(pm))):
             return text + "."

@@ -128,9 +128,14 @@ def _verdict(fit: Any) -> list[dict[str, str]]:
         sub = f"P(stable) = {fmt.prob(v.p_stable)}, P(unstable) = {fmt.prob(v.p_unstable)}"
     cells.append({"what": "stability", "value": stab, "sub": sub, "tone": tone})
     ru = _rate_unit(fit)
-    values = [value for _, value, _ in fit._eig_rows()]
-    intervals = [iv for _, _, iv in fit._eig_rows() if iv]
-    sub = "; ".join(intervals) if intervals else ""
+    rows = fit._eig_rows()
+    if fit.eigenvalues[0].imag != 0:  # a complex pair: one of them says it all
+        values = [rows[0][1].replace(" + ", " ± ").replace(" - ", " ± ", 1)]
+        intervals = [rows[0][2].replace("Im [", "|Im| [")] if rows[0][2] else []
+    else:
+        values = [value for _, value, _ in rows]
+        intervals = [f"λ{k + 1}: {iv}" for k, (_, _, iv) in enumerate(rows) if iv]
+    sub = "; ".join(intervals)
     if ru:
         sub = (f"in {ru}; " + sub) if sub else f"in {ru}"
     cells.append({"what": "eigenvalues", "value": ", ".join(values), "sub": sub, "tone": ""})
