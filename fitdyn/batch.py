@@ -713,18 +713,20 @@ def write_table(table: pd.DataFrame, path: str | os.PathLike[str]) -> Path:
     table : pandas.DataFrame
         What :func:`batch` returned.
     path : path
-        Destination; a reader never sees a half-written file.
+        Destination; a reader never sees a half-written file.  In CSV, text cells a
+        spreadsheet would run as a formula get a leading ``'``
+        (:func:`fitdyn.atomic.inert_frame`).
 
     Returns
     -------
     Path
     """
-    from fitdyn.atomic import write_with
+    from fitdyn.atomic import write_csv_frame, write_with
 
     path = Path(path)
     if path.suffix.lower() == ".parquet":
         return write_with(path, lambda p: table.to_parquet(p, index=False))
-    return write_with(path, lambda p: table.to_csv(p, index=False))
+    return write_csv_frame(path, table)
 
 
 def summary(table: pd.DataFrame, out: str | os.PathLike[str] | None = None) -> str:
