@@ -124,7 +124,8 @@ def check_outputs(
             raise OutputError(f"{option} and {seen[real]} name the same file {text}")
         seen[real] = option
         if os.path.exists(real) and option not in folder_opts and not os.path.isfile(real):
-            raise OutputError(f"{option} {text} exists and is not a regular file; give a file name")
+            kind = "a folder" if os.path.isdir(real) else "not a regular file"
+            raise OutputError(f"{option} {text} is {kind}; give a file name such as results.csv")
 
 
 # ----------------------------------------------------------------------------------
