@@ -1176,14 +1176,6 @@ def batch(
         jpaths = [None] * len(paths)
 
     tasks = list(zip(range(len(paths)), paths, seeds, jpaths, strict=True))
-    workers = int(min(workers, len(tasks)))
-    if backend == "process" and workers > 1:
-        _check_spawnable()
-    workers = max(1, workers)
-    if chunk is None:
-        chunk = max(1, min(8, len(tasks) // (4 * workers)))
-    chunks = [tasks[i : i + chunk] for i in range(0, len(tasks), chunk)]
-
     rows: list[dict[str, Any] | None] = [None] * len(tasks)
     keys: list[str] = []
     if journal is not None:
@@ -1192,6 +1184,14 @@ def batch(
         for i, key in enumerate(keys):
             rows[i] = journal.reuse(key, jpaths[i])
         tasks = [task for task in tasks if rows[task[0]] is None]
+    workers = int(min(workers, len(tasks)))
+    if backend == "process" and workers > 1:
+        _check_spawnable()
+    workers = max(1, workers)
+    if chunk is None:
+        chunk = max(1, min(8, len(tasks) // (4 * workers)))
+    chunks = [tasks[i : i + chunk] for i in range(0, len(tasks), chunk)]
+
     bar = _progress(len(rows), quiet)
     if bar is not None:
         bar.update(len(rows) - len(tasks))
