@@ -1828,9 +1828,12 @@ def _time_jumps(
     codes, names
         Trajectory codes and names with the parts added (unchanged without jumps).
     """
-    parts: dict[int, np.ndarray] = {}
+    parts: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+    rows_timed = np.flatnonzero(timed)
+    by_code = rows_timed[np.argsort(codes[rows_timed], kind="stable")]  # file order kept
+    bounds = np.searchsorted(codes[by_code], np.arange(len(names) + 1))
     for k in range(len(names)):
-        idx = np.flatnonzero(timed & (codes == k))
+        idx = by_code[bounds[k] : bounds[k + 1]]
         if idx.size < 2:
             continue
         tk = t[idx]
@@ -1891,12 +1894,11 @@ def _time_jumps(
                     label += "'"
                 taken.add(label)
                 new_names.append(label)
-    for k in range(len(names)):
-        sel = codes == k
-        new_codes[sel] = first_code[k]
-        if k in parts:
-            every, part = parts[k]
-            new_codes[every] = first_code[k] + part
+    shift = np.array([first_code[k] for k in range(len(names))], dtype=np.int64)
+    ok = codes >= 0
+    new_codes[ok] = shift[codes[ok]]
+    for k, (every, part) in parts.items():
+        new_codes[every] = first_code[k] + part
     return new_codes, tuple(new_names)
 
 
