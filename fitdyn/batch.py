@@ -926,6 +926,7 @@ class _Journal:
         self.seed = seed
         self.master: int | None = None
         self.rows: dict[str, dict[str, Any]] = {}
+        self._lines = 0  # row lines read, torn and superseded ones included
         self._fh: Any = None
         self._load()
 
@@ -949,6 +950,7 @@ class _Journal:
         if self.seed is not None and head.get("master") != self.seed:
             return
         self.master = head.get("master")
+        self._lines = len(lines) - 1
         for line in lines[1:]:
             try:
                 entry = json.loads(line)
@@ -977,11 +979,17 @@ class _Journal:
 
         from fitdyn.atomic import write_text
 
+        head = {"journal": self.VERSION, "options": self.options, "master": master}
         if self.master != master:  # nothing to reuse: a fresh journal
-            head = {"journal": self.VERSION, "options": self.options, "master": master}
             self.rows = {}
             write_text(self.path, json.dumps(head) + "\n")
             self.master = master
+        elif self._lines != len(self.rows):  # compact: drop torn and superseded lines
+            body = "".join(
+                json.dumps({"key": k, "row": r}, default=_json_value) + "\n"
+                for k, r in self.rows.items()
+            )
+            write_text(self.path, json.dumps(head) + "\n" + body)
         self._fh = open(self.path, "a+", encoding="utf-8")
         self._fh.seek(0, os.SEEK_END)
         if self._fh.tell() > 0:
