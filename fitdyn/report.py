@@ -928,6 +928,11 @@ def write_report(
     folder = Path(folder)
     if folder.exists() and not folder.is_dir():
         raise ReportError(f"{folder} exists and is not a folder; choose another report folder")
+    source = getattr(fit.recording, "source", None)
+    if isinstance(source, str) and os.path.isfile(source):
+        from fitdyn.safety import check_outputs
+
+        check_outputs([("report folder", folder)], [source], folders=("report folder",))
     _check_replaceable(folder)
 
     def build(tmp: Path) -> None:

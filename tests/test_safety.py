@@ -125,6 +125,16 @@ def test_report_dot_and_a_folder_holding_the_input_are_refused(
     assert list(other.iterdir()) == []  # no temporary folder left behind
 
 
+def test_the_library_never_replaces_a_report_folder_holding_the_input(tmp_path):
+    data = tmp_path / "data"
+    data.mkdir()
+    src = _recording(data / "s.csv")
+    res = fitdyn.fit(src, method="discrete")
+    with pytest.raises(OutputError, match="holds the input"):
+        res.report(data, formats=(), kinds=("eigen",))
+    assert [p.name for p in data.iterdir()] == ["s.csv"]
+
+
 def test_a_symlinked_report_folder_is_refused_and_its_target_kept(source, tmp_path, capsys):
     target = tmp_path / "precious"
     target.mkdir()
