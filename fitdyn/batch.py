@@ -291,7 +291,9 @@ def json_names(paths: Sequence[str], folder: str | os.PathLike[str]) -> list[Pat
 # one file (runs in the worker)
 # ----------------------------------------------------------------------------------
 def _one_line(text: str) -> str:
-    return " ".join(str(text).split())
+    from fitdyn.errors import shorten
+
+    return shorten(str(text))
 
 
 def _pair(iv: Any) -> tuple[float, float]:

@@ -396,9 +396,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     except Exception as exc:  # an unforeseen failure: one line, status 1
         if args.debug:
             raise
+        from fitdyn.errors import shorten
+
         print(
-            f"fitdyn: internal error: {type(exc).__name__}: {exc} "
-            "(rerun with --debug for details and please report it)",
+            "fitdyn: internal error: "
+            + shorten(f"{type(exc).__name__}: {exc}")
+            + " (rerun with --debug for details and please report it)",
             file=sys.stderr,
         )
         return 1
