@@ -722,16 +722,13 @@ def fit(
     -------
     Fit
     """
-    rec = _as_recording(data, read_options)
-    if isinstance(equilibrium, str):
-        if equilibrium != "estimate":
-            from fitdyn.errors import FitdynError
+    from fitdyn.safety import check_fit_args, check_scale, numerical_guard
 
-            raise FitdynError(f"equilibrium must be 'estimate' or two numbers, got '{equilibrium}'")
-        eq = None
-    else:
-        eq = np.asarray(equilibrium, dtype=float).reshape(2)
-    est, estimator = estimate(rec, method, eq, **(settings or {}))
+    eq = check_fit_args(equilibrium, bootstrap, confidence, seed, margin, rtol)
+    rec = _as_recording(data, read_options)
+    check_scale(rec)
+    with numerical_guard(rec.source, method):
+        est, estimator = estimate(rec, method, eq, **(settings or {}))
     if not (np.all(np.isfinite(est.matrix)) and np.all(np.isfinite(est.offset))):
         from fitdyn.errors import EstimationError
 
@@ -743,6 +740,14 @@ def fit(
             "several directions, or give the equilibrium with --equilibrium"
         )
     lam, vec = linalg2.eigvecs(est.matrix[None])
+    if not (np.all(np.isfinite(lam)) and np.all(np.isfinite(vec))):
+        from fitdyn.errors import EstimationError
+
+        raise EstimationError(
+            f"{rec.source}: the eigenvalues of the fitted matrix cannot be computed in "
+            "floating point (the entries are too large or too small); rescale the "
+            "channels or the time unit"
+        )
     label, stability = classify.classify(est.matrix, rtol)
     warnings = list(est.warnings)
     if 0 < int(bootstrap) < CALIBRATED_REPLICATES and not asymptotic:
@@ -756,22 +761,23 @@ def fit(
     if asymptotic or bootstrap:
         from fitdyn import bootstrap as boot
 
-        if asymptotic:
-            unc = boot.asymptotic(rec, estimator, est, confidence=confidence, seed=seed)
-        else:
-            unc = boot.bootstrap(
-                rec,
-                estimator,
-                est,
-                replicates=int(bootstrap),
-                confidence=confidence,
-                seed=seed,
-                scheme=scheme,
-                method=interval,
-                bias_correction=bias_correction,
-                margin=margin,
-                quiet=quiet,
-            )
+        with numerical_guard(rec.source, est.method, "the intervals"):
+            if asymptotic:
+                unc = boot.asymptotic(rec, estimator, est, confidence=confidence, seed=seed)
+            else:
+                unc = boot.bootstrap(
+                    rec,
+                    estimator,
+                    est,
+                    replicates=int(bootstrap),
+                    confidence=confidence,
+                    seed=seed,
+                    scheme=scheme,
+                    method=interval,
+                    bias_correction=bias_correction,
+                    margin=margin,
+                    quiet=quiet,
+                )
         warnings.extend(w for w in unc.warnings if w not in warnings)
     return Fit(
         recording=rec,

@@ -18,6 +18,7 @@ memory of the calling process grows with the number of files, not with their siz
 from __future__ import annotations
 
 import glob
+import logging
 import os
 import sys
 from collections.abc import Callable, Iterable, Iterator, Sequence
@@ -40,6 +41,7 @@ __all__ = [
     "file_seeds",
     "json_names",
     "write_table",
+    "journal_path",
     "summary",
     "SUFFIXES",
     "BACKENDS",
@@ -289,7 +291,9 @@ def json_names(paths: Sequence[str], folder: str | os.PathLike[str]) -> list[Pat
 # one file (runs in the worker)
 # ----------------------------------------------------------------------------------
 def _one_line(text: str) -> str:
-    return " ".join(str(text).split())
+    from fitdyn.errors import shorten
+
+    return shorten(str(text))
 
 
 def _pair(iv: Any) -> tuple[float, float]:
@@ -402,10 +406,58 @@ def _fit_chunk(tasks: Chunk, options: dict[str, Any]) -> list[dict[str, Any]]:
     return [_fit_file(task, options) for task in tasks]
 
 
-def _init_worker() -> None:
-    """Worker start-up: one linear-algebra thread, Ctrl-C left to the parent."""
+def _watch_parent(parent: int, interval: float = 1.0) -> None:
+    """End this process when ``parent`` is gone, even after a SIGKILL of the parent.
+
+    On Linux the kernel sends SIGKILL to this process when its parent dies
+    (``prctl(PR_SET_PDEATHSIG)``, through ctypes); everywhere a daemon thread also
+    checks every ``interval`` seconds that the parent is still there (an orphan is
+    adopted by another process, so its parent id changes) and exits at once if not.
+    An orphaned worker therefore never goes on writing results.
+    """
+    import signal
+    import threading
+    import time
+
+    if sys.platform.startswith("linux"):
+        try:
+            import ctypes
+
+            libc = ctypes.CDLL(None, use_errno=True)
+            libc.prctl(1, int(signal.SIGKILL), 0, 0, 0)  # 1 = PR_SET_PDEATHSIG
+        except Exception:  # no libc prctl: the polling thread still watches
+            pass
+
+    def gone() -> bool:
+        if os.getppid() != parent:
+            return True
+        try:
+            os.kill(parent, 0)
+        except ProcessLookupError:
+            return True
+        except OSError:
+            pass
+        return False
+
+    if gone():
+        os._exit(1)
+
+    def watch() -> None:
+        while True:
+            time.sleep(interval)
+            if gone():
+                os._exit(1)
+
+    threading.Thread(target=watch, name="fitdyn-parent-watch", daemon=True).start()
+
+
+def _init_worker(parent: int | None = None) -> None:
+    """Worker start-up: one linear-algebra thread, Ctrl-C left to the parent, and
+    an end when the parent ends (:func:`_watch_parent`)."""
     import signal
 
+    if parent is not None:
+        _watch_parent(parent)
     for var in _THREAD_VARS:
         os.environ[var] = "1"
     try:  # libraries already loaded in this process (optional helper, if installed)
@@ -563,7 +615,12 @@ def _pool_round(
     # the same behaviour on every platform
     ctx = multiprocessing.get_context("spawn")
     with _one_thread_env():
-        ex = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_worker)
+        ex = ProcessPoolExecutor(
+            max_workers=workers,
+            mp_context=ctx,
+            initializer=_init_worker,
+            initargs=(os.getpid(),),
+        )
         try:
             result = _drive(ex, chunks, options, in_flight, done, fn, (BrokenProcessPool,))
         except BaseException:  # Ctrl-C: stop now, not after the files already handed out
@@ -628,25 +685,67 @@ def _run_dask(chunks: list, options: dict[str, Any], workers: int, done: Callabl
         client = default_client()
         own = None
     except ValueError:  # no client yet: start a local cluster for this batch
-        with _one_thread_env():
+        # the worker processes start with Ctrl-C ignored (the terminal sends it to
+        # the whole process group; only this process handles it, quietly)
+        with _one_thread_env(), _sigint_ignored():
             cluster = LocalCluster(
-                n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None
+                n_workers=workers,
+                threads_per_worker=1,
+                processes=True,
+                dashboard_address=None,
+                silence_logs=logging.ERROR,
             )
             client = Client(cluster)
         own = (client, cluster)
+        try:  # the workers end with this process, SIGKILL included
+            client.run(_watch_parent, os.getpid())
+        except Exception:
+            pass
+    interrupted = False
     try:
         n = sum(w.get("nthreads", 1) for w in client.scheduler_info()["workers"].values())
         ex = client.get_executor(pure=False)
         try:
             _drive(ex, chunks, options, 2 * max(1, n), done, _fit_chunk)
         except BaseException:
+            interrupted = True
+            _quiet_dask()
             ex.shutdown(wait=False)
             raise
         ex.shutdown(wait=True)
     finally:
         if own is not None:
-            own[0].close()
-            own[1].close()
+            if interrupted:
+                _quiet_dask()
+            for thing in own:
+                try:
+                    thing.close()
+                except BaseException:  # closing after Ctrl-C: nothing left to save
+                    if not interrupted:
+                        raise
+
+
+@contextmanager
+def _sigint_ignored() -> Iterator[None]:
+    """Ignore SIGINT inside the block (main thread only), so child processes started
+    there inherit it ignored."""
+    import signal
+
+    try:
+        old = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    except (ValueError, OSError):
+        yield
+        return
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, old)
+
+
+def _quiet_dask() -> None:
+    """No log lines or tracebacks from Dask while it is stopped after Ctrl-C."""
+    for name in ("distributed", "tornado", "asyncio"):
+        logging.getLogger(name).setLevel(logging.CRITICAL + 1)
 
 
 # ----------------------------------------------------------------------------------
@@ -713,18 +812,20 @@ def write_table(table: pd.DataFrame, path: str | os.PathLike[str]) -> Path:
     table : pandas.DataFrame
         What :func:`batch` returned.
     path : path
-        Destination; a reader never sees a half-written file.
+        Destination; a reader never sees a half-written file.  In CSV, text cells a
+        spreadsheet would run as a formula get a leading ``'``
+        (:func:`fitdyn.atomic.inert_frame`).
 
     Returns
     -------
     Path
     """
-    from fitdyn.atomic import write_with
+    from fitdyn.atomic import write_csv_frame, write_with
 
     path = Path(path)
     if path.suffix.lower() == ".parquet":
         return write_with(path, lambda p: table.to_parquet(p, index=False))
-    return write_with(path, lambda p: table.to_csv(p, index=False))
+    return write_csv_frame(path, table)
 
 
 def summary(table: pd.DataFrame, out: str | os.PathLike[str] | None = None) -> str:
@@ -766,6 +867,162 @@ def summary(table: pd.DataFrame, out: str | os.PathLike[str] | None = None) -> s
         lines.append(f"table written to {os.fspath(out)}")
     lines.append(CAUTION)
     return "\n".join(lines)
+
+
+# ----------------------------------------------------------------------------------
+# resuming: the journal beside the table
+# ----------------------------------------------------------------------------------
+def journal_path(out: str | os.PathLike[str]) -> Path:
+    """Where :func:`batch` keeps the journal of the table ``out``
+    (``.<name>.fitdyn-journal.jsonl`` beside it)."""
+    out = Path(out)
+    return out.with_name(f".{out.name}.fitdyn-journal.jsonl")
+
+
+def _file_digest(path: str) -> str:
+    import hashlib
+
+    h = hashlib.sha256()
+    try:
+        with open(path, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                h.update(block)
+    except OSError as exc:  # the fit will report it; never reuse a row for it
+        return f"unreadable:{exc.errno}"
+    return h.hexdigest()
+
+
+class _Journal:
+    """One line of JSON per finished file, appended (and flushed to disk) as each
+    file finishes, so that an interrupted or killed batch loses at most the files
+    in progress.
+
+    The first line records the options and the master seed; a row is reused on a
+    later run only when the options, the file's path and content (SHA-256) and its
+    seed are all unchanged.  Rows of internal errors (a crash, a worker that died)
+    are never reused.  A torn last line (a kill in mid-write) is ignored.
+    """
+
+    VERSION = 1
+
+    def __init__(
+        self,
+        out: Path,
+        fit_options: dict[str, Any],
+        json_dir: str | os.PathLike[str] | None,
+        seed: int | None,
+    ) -> None:
+        import hashlib
+        import json
+
+        from fitdyn import __version__
+
+        self.path = journal_path(out)
+        spec = {
+            "fitdyn": __version__,
+            "options": fit_options,
+            "json_dir": None if json_dir is None else os.path.realpath(os.fspath(json_dir)),
+        }
+        text = json.dumps(spec, sort_keys=True, default=repr)
+        self.options = hashlib.sha256(text.encode()).hexdigest()
+        self.seed = seed
+        self.master: int | None = None
+        self.rows: dict[str, dict[str, Any]] = {}
+        self._lines = 0  # row lines read, torn and superseded ones included
+        self._fh: Any = None
+        self._load()
+
+    def _load(self) -> None:
+        import json
+
+        try:
+            lines = self.path.read_text(encoding="utf-8").splitlines()
+        except (OSError, UnicodeDecodeError):
+            return
+        if not lines:
+            return
+        try:
+            head = json.loads(lines[0])
+        except ValueError:
+            return
+        if not isinstance(head, dict) or head.get("journal") != self.VERSION:
+            return
+        if head.get("options") != self.options:
+            return
+        if self.seed is not None and head.get("master") != self.seed:
+            return
+        self.master = head.get("master")
+        self._lines = len(lines) - 1
+        for line in lines[1:]:
+            try:
+                entry = json.loads(line)
+                self.rows[str(entry["key"])] = dict(entry["row"])
+            except (ValueError, KeyError, TypeError):
+                continue  # a torn line from a killed run
+
+    def key(self, path: str, seed: int) -> str:
+        import hashlib
+
+        ident = f"{os.path.realpath(path)}\0{_file_digest(path)}\0{seed}"
+        return hashlib.sha256(ident.encode("utf-8", "surrogateescape")).hexdigest()
+
+    def reuse(self, key: str, json_path: str | None) -> dict[str, Any] | None:
+        row = self.rows.get(key)
+        if row is None or str(row.get("message", "")).startswith("internal error"):
+            return None
+        if json_path is not None and row.get("status") == "ok":
+            if row.get("json_file") != json_path or not os.path.isfile(json_path):
+                return None
+        return dict(row)
+
+    def start(self, master: int) -> None:
+        """Open the journal for appending; a new one when nothing could be reused."""
+        import json
+
+        from fitdyn.atomic import write_text
+
+        head = {"journal": self.VERSION, "options": self.options, "master": master}
+        if self.master != master:  # nothing to reuse: a fresh journal
+            self.rows = {}
+            write_text(self.path, json.dumps(head) + "\n")
+            self.master = master
+        elif self._lines != len(self.rows):  # compact: drop torn and superseded lines
+            body = "".join(
+                json.dumps({"key": k, "row": r}, default=_json_value) + "\n"
+                for k, r in self.rows.items()
+            )
+            write_text(self.path, json.dumps(head) + "\n" + body)
+        self._fh = open(self.path, "a+", encoding="utf-8")
+        self._fh.seek(0, os.SEEK_END)
+        if self._fh.tell() > 0:
+            self._fh.seek(self._fh.tell() - 1)
+            last = self._fh.read(1)
+            self._fh.seek(0, os.SEEK_END)
+            if last != "\n":  # a torn line: end it so the next entry is whole
+                self._fh.write("\n")
+
+    def add(self, key: str, row: dict[str, Any]) -> None:
+        import json
+
+        if self._fh is None:
+            return
+        self._fh.write(json.dumps({"key": key, "row": row}, default=_json_value) + "\n")
+        self._fh.flush()
+        try:
+            os.fsync(self._fh.fileno())
+        except OSError:
+            pass
+
+    def close(self) -> None:
+        if self._fh is not None:
+            self._fh.close()
+            self._fh = None
+
+
+def _json_value(obj: Any) -> Any:
+    if hasattr(obj, "item"):
+        return obj.item()
+    return str(obj)
 
 
 # ----------------------------------------------------------------------------------
@@ -897,37 +1154,71 @@ def batch(
     if not 0 < confidence < 1:
         raise FitdynError(f"confidence must be between 0 and 1, got {confidence}")
     _check_options(options)
+    from fitdyn.safety import check_outputs, is_fitdyn_json
+
     out_path = None if out is None else Path(out)
-    paths = find_sources(sources, exclude=() if out_path is None else (out_path,))
-    master, seeds = file_seeds(seed, len(paths))
+    items = [sources] if isinstance(sources, str | os.PathLike) else list(sources)
+    paths = find_sources(items)
+    check_outputs(
+        [("out", out_path), ("json_dir", json_dir)],
+        inputs=paths,
+        input_folders=[i for i in items if os.path.isdir(i)],
+        folders=("json_dir",),
+    )
+    fit_options = dict(options, method=method, bootstrap=int(bootstrap), confidence=confidence)
+    journal = None
     if out_path is not None:
         _check_output(out_path)
+        journal = _Journal(out_path, fit_options, json_dir, seed)
+        if seed is None and journal.master is not None:
+            seed = journal.master  # resume with the interrupted run's seeds
+    master, seeds = file_seeds(seed, len(paths))
     if json_dir is not None:
         _check_folder(Path(json_dir), "cannot write the JSON results")
         jpaths: list[str | None] = [os.fspath(p) for p in json_names(paths, json_dir)]
+        for jp in jpaths:
+            if jp is not None and os.path.lexists(jp) and not is_fitdyn_json(jp):
+                raise ReportError(
+                    f"{jp} exists and fitdyn did not write it; give json_dir (--json-dir) "
+                    "an empty folder or one holding only earlier fitdyn results"
+                )
     else:
         jpaths = [None] * len(paths)
 
-    fit_options = dict(options, method=method, bootstrap=int(bootstrap), confidence=confidence)
     tasks = list(zip(range(len(paths)), paths, seeds, jpaths, strict=True))
+    rows: list[dict[str, Any] | None] = [None] * len(tasks)
+    keys: list[str] = []
+    if journal is not None:
+        journal.start(master)
+        keys = [journal.key(path, s) for _, path, s, _ in tasks]
+        for i, key in enumerate(keys):
+            rows[i] = journal.reuse(key, jpaths[i])
+        tasks = [task for task in tasks if rows[task[0]] is None]
     workers = int(min(workers, len(tasks)))
     if backend == "process" and workers > 1:
         _check_spawnable()
+    workers = max(1, workers)
     if chunk is None:
         chunk = max(1, min(8, len(tasks) // (4 * workers)))
     chunks = [tasks[i : i + chunk] for i in range(0, len(tasks), chunk)]
 
-    rows: list[dict[str, Any] | None] = [None] * len(tasks)
-    bar = _progress(len(tasks), quiet)
+    bar = _progress(len(rows), quiet)
+    if bar is not None:
+        bar.update(len(rows) - len(tasks))
 
     def done(new: list[dict[str, Any]]) -> None:
         for r in new:
-            rows[r.pop("index")] = r
+            i = r.pop("index")
+            rows[i] = r
+            if journal is not None:
+                journal.add(keys[i], r)
         if bar is not None:
             bar.update(len(new))
 
     try:
-        if backend == "dask":
+        if not chunks:
+            pass  # every file's row came from the journal
+        elif backend == "dask":
             _run_dask(chunks, fit_options, workers, done)
         elif workers == 1:
             for c in chunks:
@@ -937,8 +1228,10 @@ def batch(
     finally:
         if bar is not None:
             bar.close()
+        if journal is not None:
+            journal.close()
 
-    missing = [tasks[i][1] for i, r in enumerate(rows) if r is None]
+    missing = [paths[i] for i, r in enumerate(rows) if r is None]
     if missing:  # cannot happen; never lose a file quietly
         raise RuntimeError(f"no result came back for {len(missing)} files, e.g. {missing[0]}")
     uncertain = bool(bootstrap) or bool(options.get("asymptotic"))

@@ -30,6 +30,9 @@ def _pair(text: str, what: str) -> list[float]:
         values = []
     if len(values) != 2:
         raise FitdynError(f"{what} must be two numbers separated by a comma, got '{text}'")
+    from fitdyn.safety import check_pair
+
+    check_pair(values, what)
     return values
 
 
@@ -41,6 +44,9 @@ def _matrix(text: str) -> list[list[float]]:
         m = []
     if len(m) != 2 or any(len(r) != 2 for r in m):
         raise FitdynError(f"--matrix must look like 'a11,a12;a21,a22', got '{text}'")
+    from fitdyn.safety import check_pair
+
+    check_pair(m[0] + m[1], "--matrix")
     return m
 
 
@@ -97,6 +103,19 @@ def _add_import_options(p: argparse.ArgumentParser) -> None:
         metavar="K",
         help="a step longer than K times the median step is a gap (a number, no unit; default 3)",
     )
+    g.add_argument(
+        "--time-jumps",
+        choices=("split", "refuse", "sort"),
+        default=None,
+        help="time jumping back in file order (a repeated clock hour, a clock restart): "
+        "split into separate trajectories (default), stop with an error, or sort by time",
+    )
+    g.add_argument(
+        "--max-bytes", type=int, default=None, metavar="N", help="largest file read (bytes)"
+    )
+    g.add_argument(
+        "--max-line", type=int, default=None, metavar="N", help="longest line read (characters)"
+    )
 
 
 def _read_options(args: argparse.Namespace) -> dict[str, Any]:
@@ -120,6 +139,12 @@ def _read_options(args: argparse.Namespace) -> dict[str, Any]:
         opts["outliers"] = args.outliers
     if args.gap_factor is not None:
         opts["gap_factor"] = args.gap_factor
+    if args.time_jumps:
+        opts["time_jumps"] = args.time_jumps
+    if args.max_bytes is not None:
+        opts["max_bytes"] = args.max_bytes
+    if args.max_line is not None:
+        opts["max_line"] = args.max_line
     return opts
 
 
@@ -396,10 +421,9 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
         write_text(args.json, json.dumps(rec.describe(), indent=2) + "\n")
     if args.write_clean:
-        from fitdyn.atomic import write_with
+        from fitdyn.atomic import write_csv_frame
 
-        frame = rec.to_frame()
-        write_with(args.write_clean, lambda p: frame.to_csv(p, index=False))
+        write_csv_frame(args.write_clean, rec.to_frame())
     return 0
 
 
@@ -494,8 +518,16 @@ def main(argv: Sequence[str] | None = None) -> int:
         "simulate": _cmd_simulate,
         "batch": _cmd_batch,
     }[args.command]
+    from fitdyn.safety import Terminated, check_cli_args, cli_outputs, exit_on_signals
+
     try:
-        return handler(args)
+        with exit_on_signals():
+            check_cli_args(args)
+            cli_outputs(args)
+            return handler(args)
+    except Terminated as exc:
+        print("fitdyn: stopped by a signal; temporary files removed", file=sys.stderr)
+        return int(exc.code or 1)
     except FitdynError as exc:
         if args.debug:
             raise
@@ -521,9 +553,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     except Exception as exc:  # an unforeseen failure: one line, status 1
         if args.debug:
             raise
+        from fitdyn.errors import shorten
+
         print(
-            f"fitdyn: internal error: {type(exc).__name__}: {exc} "
-            "(rerun with --debug for details and please report it)",
+            "fitdyn: internal error: "
+            + shorten(f"{type(exc).__name__}: {exc}")
+            + " (rerun with --debug for details and please report it)",
             file=sys.stderr,
         )
         return 1

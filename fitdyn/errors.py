@@ -17,7 +17,30 @@ __all__ = [
     "NoRealLogarithmError",
     "SamplingError",
     "ReportError",
+    "OutputError",
+    "shorten",
+    "MAX_MESSAGE",
 ]
+
+#: Longest message shown; longer ones (a whole line of a broken file quoted) are cut.
+MAX_MESSAGE = 1000
+#: Longest run of text without a space kept whole inside a message.
+_MAX_WORD = 200
+
+
+def shorten(text: str, limit: int = MAX_MESSAGE) -> str:
+    """One line of at most ``limit`` characters: whitespace collapsed, very long
+    words (quoted file content) cut in the middle, the tail cut with a count."""
+    words = []
+    for w in str(text).split():
+        if len(w) > _MAX_WORD:
+            w = f"{w[: _MAX_WORD // 2]}...({len(w)} characters)...{w[-40:]}"
+        words.append(w)
+    line = " ".join(words)
+    if len(line) > limit:
+        cut = len(line) - limit
+        line = f"{line[:limit]}... ({cut} more characters)"
+    return line
 
 
 def _where(
@@ -58,7 +81,7 @@ class FitdynError(Exception):
         self.detail = message
         where = _where(source, column, row)
         text = f"{where}: {message}" if where else message
-        super().__init__(" ".join(text.split()))
+        super().__init__(shorten(text))
 
 
 class InputError(FitdynError):
@@ -91,3 +114,8 @@ class SamplingError(EstimationError):
 
 class ReportError(FitdynError):
     """A report or output file cannot be written."""
+
+
+class OutputError(ReportError):
+    """An output path is refused: it would overwrite an input or a file fitdyn did
+    not write."""

@@ -146,6 +146,12 @@ _UNIT_PATTERNS = (
 #: A spreadsheet error value at the start of a line is a data cell, not a comment.
 _SHEET_ERROR = re.compile(r"#(?:N/A|VALUE!|DIV/0!|REF!|NAME\?|NUM!|NULL!)", re.IGNORECASE)
 
+#: Choices of ``read(time_jumps=...)``.
+TIME_JUMPS = ("split", "refuse", "sort")
+#: A backward step in file order is a local shuffle when fewer than this many rows
+#: lie on either side of it (earlier rows later in time, later rows earlier in time).
+SHUFFLE_ROWS = 3
+
 _SEP_NAMES = {"\t": "tab", ";": "';'", ",": "','", "|": "'|'", None: "whitespace"}
 
 
@@ -295,17 +301,97 @@ def _looks_decimal_comma(columns: list[_Column], sep: str | None) -> bool:
 # ------------------------------------------------------------------------------------
 # Loaders
 # ------------------------------------------------------------------------------------
-def _read_bytes(path: Path, label: str) -> bytes:
-    if not path.exists():
-        raise InputError("file not found; check the path and the current folder", source=label)
-    if path.is_dir():
-        raise InputError("is a folder, not a file; give the path of a data file", source=label)
+#: Largest file read by default (bytes); ``read(max_bytes=...)`` changes it.
+MAX_BYTES = 1 << 30
+#: Longest text line read by default (characters); ``read(max_line=...)`` changes it.
+MAX_LINE = 100_000
+
+
+def _size_text(n: int) -> str:
+    for unit, k in (("GB", 1 << 30), ("MB", 1 << 20), ("kB", 1 << 10)):
+        if n >= k:
+            return f"{n / k:.1f} {unit}"
+    return f"{n} bytes"
+
+
+def _check_regular(path: Path, label: str, max_bytes: int) -> None:
+    """Refuse what is not a regular file of at most ``max_bytes`` (never opens it)."""
     try:
-        return path.read_bytes()
+        st = path.stat()
+    except FileNotFoundError:
+        raise InputError(
+            "file not found; check the path and the current folder", source=label
+        ) from None
     except OSError as exc:
         raise InputError(
             f"cannot be read ({exc.strerror}); check its permissions", source=label
         ) from None
+    _check_stat(st, label, max_bytes)
+
+
+def _check_stat(st: os.stat_result, label: str, max_bytes: int) -> None:
+    import stat
+
+    if stat.S_ISDIR(st.st_mode):
+        raise InputError("is a folder, not a file; give the path of a data file", source=label)
+    if not stat.S_ISREG(st.st_mode):
+        kind = (
+            "a pipe"
+            if stat.S_ISFIFO(st.st_mode)
+            else "a device"
+            if stat.S_ISCHR(st.st_mode) or stat.S_ISBLK(st.st_mode)
+            else "a socket"
+            if stat.S_ISSOCK(st.st_mode)
+            else "not a regular file"
+        )
+        raise InputError(
+            f"is {kind}, not a regular file; save the data to a file and read that",
+            source=label,
+        )
+    if st.st_size > max_bytes:
+        raise InputError(
+            f"is {_size_text(st.st_size)}, more than the limit of {_size_text(max_bytes)}; "
+            "pass max_bytes=... (--max-bytes) to read it anyway",
+            source=label,
+        )
+
+
+def _read_bytes(path: Path, label: str, max_bytes: int = MAX_BYTES) -> bytes:
+    """The bytes of a regular file of at most ``max_bytes``.
+
+    The file is opened without blocking (a pipe would wait for a writer forever)
+    and checked on the open handle, so a device or a pipe is never read.
+    """
+    _check_regular(path, label, max_bytes)
+    try:
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0))
+    except OSError as exc:
+        raise InputError(
+            f"cannot be read ({exc.strerror}); check its permissions", source=label
+        ) from None
+    try:
+        _check_stat(os.fstat(fd), label, max_bytes)
+        chunks = []
+        total = 0
+        while True:
+            block = os.read(fd, 1 << 20)
+            if not block:
+                break
+            total += len(block)
+            if total > max_bytes:  # grew while being read
+                raise InputError(
+                    f"is more than the limit of {_size_text(max_bytes)}; pass "
+                    "max_bytes=... (--max-bytes) to read it anyway",
+                    source=label,
+                )
+            chunks.append(block)
+        return b"".join(chunks)
+    except OSError as exc:
+        raise InputError(
+            f"cannot be read ({exc.strerror}); check its permissions", source=label
+        ) from None
+    finally:
+        os.close(fd)
 
 
 def _decode(raw: bytes, label: str, encoding: str | None) -> tuple[str, str]:
@@ -383,8 +469,19 @@ def _width(record: list[str]) -> int:
     return k
 
 
-def _csv_records(body: list[tuple[int, str]], sep: str) -> tuple[list[list[str]], list[int]]:
-    """Parse lines with the csv module, remembering the line each record starts on."""
+#: A quoted cell may run over at most this many lines before the quote counts as damaged.
+MAX_QUOTED_LINES = 2
+
+
+def _csv_records(
+    body: list[tuple[int, str]], sep: str, label: str = "", notes: list[str] | None = None
+) -> tuple[list[list[str]], list[int]]:
+    """Parse lines with the csv module, remembering the line each record starts on.
+
+    A record that runs over more than :data:`MAX_QUOTED_LINES` lines is an unbalanced
+    quote swallowing the lines after it: refused, naming the line; one over two lines
+    is noted.
+    """
     texts = [ln for _, ln in body]
     reader = csv.reader(texts, delimiter=sep, skipinitialspace=True)
     if not any('"' in ln for ln in texts):
@@ -400,6 +497,20 @@ def _csv_records(body: list[tuple[int, str]], sep: str) -> tuple[list[list[str]]
             break
         records.append(rec)
         starts.append(body[k][0])
+        span = reader.line_num - k
+        if span > 1:
+            first, last = body[k][0], body[reader.line_num - 1][0]
+            if span > MAX_QUOTED_LINES:
+                raise InputError(
+                    f'a quote (") opened on line {first} is not closed before line {last}, '
+                    f"so {span} lines would be read as one row; fix or remove that quote",
+                    source=label or None,
+                    row=first,
+                )
+            if notes is not None:
+                notes.append(
+                    f"line {first}: a quoted cell runs on to line {last} (read as one row)"
+                )
     return records, starts
 
 
@@ -419,14 +530,30 @@ def _looks_numeric(cells: list[str]) -> bool:
     return bool(cells) and all(_NUMBERISH.fullmatch(c) for c in cells)
 
 
-def _read_text(path: Path, label: str, sep: str | None, encoding: str | None) -> _Table:
-    raw = _read_bytes(path, label)
+def _read_text(
+    path: Path,
+    label: str,
+    sep: str | None,
+    encoding: str | None,
+    max_bytes: int = MAX_BYTES,
+    max_line: int = MAX_LINE,
+) -> _Table:
+    raw = _read_bytes(path, label, max_bytes)
     if raw[:4] == b"PK\x03\x04":
-        return _read_excel(path, label, None)
+        return _read_excel(path, label, None, max_bytes)
     if raw[:4] == b"PAR1":
-        return _read_parquet(path, label)
+        return _read_parquet(path, label, max_bytes)
     text, enc = _decode(raw, label, encoding)
     lines = text.replace("\r\n", "\n").replace("\r", "\n").split("\n")
+    long = next((i for i, ln in enumerate(lines, 1) if len(ln) > max_line), None)
+    if long is not None:
+        raise InputError(
+            f"line {long} has {len(lines[long - 1])} characters, more than the limit of "
+            f"{max_line} (a file without line breaks, or not a table?); pass "
+            "max_line=... (--max-line) to read it anyway",
+            source=label,
+            row=long,
+        )
     body: list[tuple[int, str]] = []
     last_comment: str | None = None
     for i, line in enumerate(lines, 1):
@@ -458,7 +585,7 @@ def _read_text(path: Path, label: str, sep: str | None, encoding: str | None) ->
             records = [ln.split() for _, ln in body]
             starts = [i for i, _ in body]
         else:
-            records, starts = _csv_records(body, delim)
+            records, starts = _csv_records(body, delim, label, notes)
     except csv.Error as exc:
         raise InputError(
             f"cannot be split into fields ({exc}); pass sep=... explicitly", source=label
@@ -534,15 +661,16 @@ def _read_text(path: Path, label: str, sep: str | None, encoding: str | None) ->
     return table
 
 
-def _read_excel(path: Path, label: str, sheet: str | int | None) -> _Table:
+def _read_excel(
+    path: Path, label: str, sheet: str | int | None, max_bytes: int = MAX_BYTES
+) -> _Table:
     try:
         import openpyxl
     except ImportError:
         raise InputError(
             'reading .xlsx files needs openpyxl: pip install "fitdyn[excel]"', source=label
         ) from None
-    if not path.exists():
-        _read_bytes(path, label)
+    _check_regular(path, label, max_bytes)
     try:
         wb = openpyxl.load_workbook(path, read_only=True, data_only=True)
     except Exception as exc:  # openpyxl raises many types for broken files
@@ -636,15 +764,14 @@ def _read_excel(path: Path, label: str, sheet: str | int | None) -> _Table:
     return table
 
 
-def _read_parquet(path: Path, label: str) -> _Table:
+def _read_parquet(path: Path, label: str, max_bytes: int = MAX_BYTES) -> _Table:
     try:
         import pyarrow.parquet as pq
     except ImportError:
         raise InputError(
             'reading .parquet files needs pyarrow: pip install "fitdyn[parquet]"', source=label
         ) from None
-    if not path.exists():
-        _read_bytes(path, label)
+    _check_regular(path, label, max_bytes)
     try:
         frame = pq.read_table(path).to_pandas()
     except Exception as exc:  # pyarrow raises several types for broken files
@@ -1040,6 +1167,9 @@ def read(
     sep: str | None = None,
     decimal: str | None = None,
     encoding: str | None = None,
+    time_jumps: str = "split",
+    max_bytes: int = MAX_BYTES,
+    max_line: int = MAX_LINE,
 ) -> Recording:
     """Read and clean a two-channel recording.
 
@@ -1096,6 +1226,21 @@ def read(
         separator is not a comma).
     encoding : str, optional
         Text encoding (default: UTF-8 with or without BOM, else latin-1).
+    time_jumps : {"split", "refuse", "sort"}
+        What to do when the time of a trajectory jumps back in file order by more
+        than a local shuffle of a few rows (a clock hour repeated when daylight
+        saving time ends, a logger's clock restarting, files joined together):
+        ``"split"`` (default) makes each stretch between such jumps a trajectory
+        of its own (named ``"<id> (part 2)"``...) and says so in the cleaning log;
+        ``"refuse"`` raises a :class:`~fitdyn.errors.TimeError` naming the row;
+        ``"sort"`` sorts the rows by time as for a local shuffle (repeated times
+        are then merged).  A trajectory whose time runs backwards throughout is
+        refused unless ``"sort"`` is given.
+    max_bytes : int
+        Largest file read (default 1 GiB); anything but a regular file (a pipe, a
+        device, a folder) is always refused.
+    max_line : int
+        Longest line of a text file read (default 100000 characters).
 
     Returns
     -------
@@ -1118,22 +1263,27 @@ def read(
         min_samples,
         decimal,
     )
+    if time_jumps not in TIME_JUMPS:
+        raise InputError(f"time_jumps must be one of {', '.join(TIME_JUMPS)}, got {time_jumps!r}")
+    for name, value in (("max_bytes", max_bytes), ("max_line", max_line)):
+        if isinstance(value, bool) or not isinstance(value, int | np.integer) or value < 1:
+            raise InputError(f"{name} must be a whole number >= 1, got {value!r}")
     forced: tuple | None = None
     if isinstance(source, str | os.PathLike):
         path = Path(source)
         label = os.fspath(source)
         ext = path.suffix.lower()
         if ext in (".xlsx", ".xlsm"):
-            table = _read_excel(path, label, sheet)
+            table = _read_excel(path, label, sheet, max_bytes)
         elif ext == ".xls":
             raise InputError(
                 "old .xls workbooks are not supported; save the sheet as .xlsx or CSV",
                 source=label,
             )
         elif ext in (".parquet", ".pq"):
-            table = _read_parquet(path, label)
+            table = _read_parquet(path, label, max_bytes)
         else:
-            table = _read_text(path, label, sep, encoding)
+            table = _read_text(path, label, sep, encoding, max_bytes, max_line)
     elif isinstance(source, pd.DataFrame):
         table = _frame_table(source, "DataFrame")
     elif isinstance(source, Mapping):
@@ -1188,6 +1338,7 @@ def read(
         outlier_threshold=float(outlier_threshold),
         gap_factor=gap_factor,
         min_samples=int(min_samples),
+        time_jumps=time_jumps,
     )
 
 
@@ -1230,6 +1381,7 @@ def _clean(
     outlier_threshold,
     gap_factor,
     min_samples,
+    time_jumps="split",
 ) -> Recording:
     src = table.source
     n = table.n
@@ -1420,8 +1572,12 @@ def _clean(
     timed = (codes >= 0) & (tm.code == _OK)
     if tcol is not None:
         _check_restarts(codes[timed], t[timed], rows[timed], names, src, tcol.header)
-    else:
+    elif time_jumps == "sort":
         _note_restart(t[timed], rows[timed], notes)
+    if time_jumps != "sort":
+        codes, names = _time_jumps(
+            codes, names, t, timed, rows, time_jumps, src, xcol.header, tcol is not None, notes
+        )
 
     # -- duplicates and repeated timestamps ------------------------------------------
     valid = np.flatnonzero(reason == 0)
@@ -1623,6 +1779,127 @@ def _check_restarts(
                 row=int(rows[starts[b]]),
             )
         last_block[code] = b
+
+
+def _jumps_back(tk: np.ndarray) -> np.ndarray:
+    """Positions ``i`` where time jumps back in file order by more than a local shuffle.
+
+    Position ``i`` (``tk[i] < tk[i - 1]``) is a jump when the :data:`SHUFFLE_ROWS`
+    rows before it are all later than ``tk[i]`` and the :data:`SHUFFLE_ROWS` rows
+    from it on are all earlier than ``tk[i - 1]``: two stretches overlap in time, as
+    when a clock hour repeats or a clock restarts.  A row or two out of place (a
+    logger writing late) is a shuffle, sorted quietly.
+    """
+    m = tk.size
+    s = SHUFFLE_ROWS
+    if m < 2 * s:
+        return np.zeros(0, dtype=np.int64)
+    i = np.arange(s, m - s + 1)
+    back = tk[i] < tk[i - 1]
+    if not back.any():
+        return np.zeros(0, dtype=np.int64)
+    win = np.lib.stride_tricks.sliding_window_view(tk, s)  # win[j] = tk[j : j + s]
+    before_min = win[i - s].min(axis=1)
+    after_max = win[i].max(axis=1)
+    jump = back & (before_min > tk[i]) & (after_max < tk[i - 1])
+    return i[jump]
+
+
+def _time_jumps(
+    codes: np.ndarray,
+    names: tuple[str, ...],
+    t: np.ndarray,
+    timed: np.ndarray,
+    rows: np.ndarray,
+    mode: str,
+    src: str,
+    column: str,
+    named: bool,
+    notes: list[str],
+) -> tuple[np.ndarray, tuple[str, ...]]:
+    """Find time running backwards or jumping back in file order, before any sorting.
+
+    A trajectory whose time mostly runs backwards is refused; at jumps back (see
+    :func:`_jumps_back`) the trajectory is split into parts, each a trajectory of
+    its own (``mode="split"``), or refused (``mode="refuse"``).
+
+    Returns
+    -------
+    codes, names
+        Trajectory codes and names with the parts added (unchanged without jumps).
+    """
+    parts: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+    rows_timed = np.flatnonzero(timed)
+    by_code = rows_timed[np.argsort(codes[rows_timed], kind="stable")]  # file order kept
+    bounds = np.searchsorted(codes[by_code], np.arange(len(names) + 1))
+    for k in range(len(names)):
+        idx = by_code[bounds[k] : bounds[k + 1]]
+        if idx.size < 2:
+            continue
+        tk = t[idx]
+        steps = np.diff(tk)
+        n_back = int(np.count_nonzero(steps < 0))
+        n_fwd = int(np.count_nonzero(steps > 0))
+        where = f" of trajectory '{names[k]}'" if named else ""
+        if n_back >= 2 and n_back > n_fwd:
+            raise TimeError(
+                f"time runs backwards{where} ({n_back} of {steps.size} steps go back, "
+                f"from {tk[0]:g} at row {int(rows[idx[0]])} to {tk[-1]:g} at row "
+                f"{int(rows[idx[-1]])}); sort the rows by time, or pass "
+                "time_jumps='sort' (--time-jumps sort) to let fitdyn sort them",
+                source=src,
+                column=column,
+                row=int(rows[idx[0]]),
+            )
+        jumps = _jumps_back(tk)
+        if jumps.size == 0:
+            continue
+        j0 = int(jumps[0])
+        if mode == "refuse":
+            raise TimeError(
+                f"time jumps back{where} from {tk[j0 - 1]:g} at row {int(rows[idx[j0 - 1]])} "
+                f"to {tk[j0]:g} (a clock hour repeated when daylight saving time ends, a "
+                "clock restart, or files joined together?); fix the times, or pass "
+                "time_jumps='split' to fit each stretch as a trajectory of its own, or "
+                "'sort' to sort the rows by time",
+                source=src,
+                column=column,
+                row=int(rows[idx[j0]]),
+            )
+        at = ", ".join(f"row {int(rows[idx[j]])}" for j in jumps[:5].tolist())
+        more = f" and {jumps.size - 5} more" if jumps.size > 5 else ""
+        notes.append(
+            f"time jumps back{where} at {at}{more} (first from {tk[j0 - 1]:g} to "
+            f"{tk[j0]:g}): a repeated clock hour, a clock restart or joined files?; the "
+            f"{jumps.size + 1} stretches are kept apart as trajectories of their own "
+            f"('{names[k]} (part 2)'...), not merged by time; time_jumps='sort' sorts "
+            "them together instead"
+        )
+        every = np.flatnonzero(codes == k)
+        parts[k] = (every, np.searchsorted(idx[jumps], every, side="right"))
+    if not parts:
+        return codes, names
+    new_codes = codes.copy()
+    new_names: list[str] = []
+    taken = set(names)
+    first_code = {}
+    for k, name in enumerate(names):
+        first_code[k] = len(new_names)
+        new_names.append(name)
+        if k in parts:
+            every, part = parts[k]
+            for p in range(1, int(part.max()) + 1):
+                label = f"{name} (part {p + 1})"
+                while label in taken:
+                    label += "'"
+                taken.add(label)
+                new_names.append(label)
+    shift = np.array([first_code[k] for k in range(len(names))], dtype=np.int64)
+    ok = codes >= 0
+    new_codes[ok] = shift[codes[ok]]
+    for k, (every, part) in parts.items():
+        new_codes[every] = first_code[k] + part
+    return new_codes, tuple(new_names)
 
 
 def _note_restart(t: np.ndarray, rows: np.ndarray, notes: list[str]) -> None:

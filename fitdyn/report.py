@@ -27,14 +27,13 @@ import base64
 import datetime as _dt
 import io
 import os
-import re
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from fitdyn import __version__, fmt
-from fitdyn.atomic import replace_dir, write_bytes, write_text
+from fitdyn.atomic import replace_dir, write_bytes, write_csv_frame, write_text
 from fitdyn.errors import ReportError
 from fitdyn.verdict import a_label, join_labels
 
@@ -812,31 +811,89 @@ def render_html(fit: Any, figures: list[dict[str, Any]], files: list[tuple[str, 
     return _environment().get_template("report.html.j2").render(**context)
 
 
-_REPORT_FILE = re.compile(r"^(index\.html|result\.json|cleaned\.csv|figure-[a-z]+\.(png|svg|pdf))$")
+#: The file in every report folder listing what fitdyn wrote there (name, size, SHA-256).
+MANIFEST = "fitdyn-manifest.json"
+
+
+def _digest(path: Path) -> str:
+    import hashlib
+
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def _write_manifest(folder: Path) -> None:
+    import json
+
+    from fitdyn import __version__
+
+    files = {
+        p.name: {"bytes": p.stat().st_size, "sha256": _digest(p)}
+        for p in sorted(folder.iterdir())
+        if p.is_file() and p.name != MANIFEST
+    }
+    text = json.dumps({"written_by": f"fitdyn {__version__}", "files": files}, indent=2)
+    write_text(folder / MANIFEST, text + "\n")
 
 
 def _check_replaceable(folder: Path) -> None:
-    """Refuse to replace a folder that is not an earlier fitdyn report (or empty).
+    """Refuse to replace a folder unless it is empty or fitdyn wrote all of it.
 
-    Replacing swaps the whole folder, so a folder holding anything else (a data
-    folder given by mistake) must never be replaced.
+    Replacing swaps the whole folder, so it happens only when the folder's manifest
+    (:data:`MANIFEST`, written by fitdyn) lists every entry in it with the size and
+    SHA-256 it had when written: a data folder given by mistake, a file added to an
+    old report or a page edited by hand are never lost.
     """
+    import json
+
+    from fitdyn.safety import check_report_folder
+
+    check_report_folder(folder)
     if not folder.is_dir():
         return
     entries = sorted(p.name for p in folder.iterdir())
     if not entries:
         return
-    foreign = [e for e in entries if not _REPORT_FILE.match(e)]
-    index = folder / "index.html"
-    head = index.read_text(encoding="utf-8", errors="replace")[:2000] if index.is_file() else ""
-    ours = 'name="generator" content="fitdyn ' in head
-    if foreign or not ours:
-        shown = ", ".join(foreign[:5]) + (" ..." if len(foreign) > 5 else "")
-        why = f"it holds other files ({shown})" if foreign else "it is not a fitdyn report"
+
+    def refuse(why: str) -> None:
         raise ReportError(
             f"{folder}: will not replace this folder because {why}; give a new or empty "
-            "folder, or an earlier fitdyn report folder"
+            "folder, or move those files away"
         )
+
+    try:
+        manifest = json.loads((folder / MANIFEST).read_text(encoding="utf-8"))
+        listed = manifest["files"]
+        if not (isinstance(listed, dict) and str(manifest["written_by"]).startswith("fitdyn")):
+            raise ValueError
+    except FileNotFoundError:
+        shown = ", ".join(entries[:5]) + (" ..." if len(entries) > 5 else "")
+        refuse(f"it holds files fitdyn did not list as its own ({shown}; no {MANIFEST})")
+    except (OSError, ValueError, KeyError, TypeError):
+        refuse(f"its {MANIFEST} cannot be read")
+    foreign = [e for e in entries if e != MANIFEST and e not in listed]
+    if foreign:
+        shown = ", ".join(foreign[:5]) + (" ..." if len(foreign) > 5 else "")
+        refuse(f"it holds files fitdyn did not write ({shown})")
+    for name in entries:
+        if name == MANIFEST:
+            continue
+        p = folder / name
+        info = listed[name]
+        try:
+            same = (
+                p.is_file()
+                and not p.is_symlink()
+                and p.stat().st_size == info["bytes"]
+                and _digest(p) == info["sha256"]
+            )
+        except (OSError, KeyError, TypeError):
+            same = False
+        if not same:
+            refuse(f"{name} was changed since fitdyn wrote it")
 
 
 def write_report(
@@ -894,20 +951,27 @@ def write_report(
     folder = Path(folder)
     if folder.exists() and not folder.is_dir():
         raise ReportError(f"{folder} exists and is not a folder; choose another report folder")
+    source = getattr(fit.recording, "source", None)
+    if isinstance(source, str) and os.path.isfile(source):
+        from fitdyn.safety import check_outputs
+
+        check_outputs([("report folder", folder)], [source], folders=("report folder",))
     _check_replaceable(folder)
 
     def build(tmp: Path) -> None:
         figures = [_render_figure(fit, kind, formats, dpi, tmp) for kind in kinds]
         fit.to_json(tmp / "result.json")
-        write_text(tmp / "cleaned.csv", fit.recording.to_frame().to_csv(index=False))
+        write_csv_frame(tmp / "cleaned.csv", fit.recording.to_frame())
         files = [
             ("index.html", "this page"),
             ("result.json", "all numbers, schema fitdyn/1"),
             ("cleaned.csv", "the cleaned samples"),
+            (MANIFEST, "what fitdyn wrote here, with sizes and SHA-256"),
         ]
         for f in figures:
             files.extend((name, f["title"].lower()) for name in f["files"])
         write_text(tmp / "index.html", render_html(fit, figures, files))
+        _write_manifest(tmp)
 
     try:
         replace_dir(folder, build)

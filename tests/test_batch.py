@@ -360,7 +360,11 @@ def test_csv_table_is_written_and_reads_back(rigs, boot_table, tmp_path):
     out = tmp_path / "tables" / "results.csv"
     t = batch(rigs, bootstrap=50, seed=11, out=out, quiet=True, **FAST)
     pd.testing.assert_frame_equal(t, boot_table, check_exact=True)
-    assert [p.name for p in out.parent.iterdir()] == ["results.csv"]  # no temporary left
+    # no temporary left; the journal that lets a rerun skip unchanged files stays
+    assert sorted(p.name for p in out.parent.iterdir()) == [
+        ".results.csv.fitdyn-journal.jsonl",
+        "results.csv",
+    ]
     back = pd.read_csv(out)
     assert list(back.columns) == list(t.columns)
     num = t.select_dtypes("number").columns
@@ -381,7 +385,11 @@ def test_a_failed_table_write_leaves_the_previous_table(rigs, tmp_path, monkeypa
     with pytest.raises(OSError):
         batch([rigs / "rig_a.csv"], out=out, quiet=True, **FAST)
     assert out.read_text() == "previous\n"
-    assert [p.name for p in tmp_path.iterdir()] == ["results.csv"]
+    # no temporary left; the journal keeps the fitted row for a rerun
+    assert sorted(p.name for p in tmp_path.iterdir()) == [
+        ".results.csv.fitdyn-journal.jsonl",
+        "results.csv",
+    ]
 
 
 def test_parquet_table(rigs, tmp_path):

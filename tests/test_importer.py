@@ -595,7 +595,13 @@ def test_unique_id_column_is_not_a_trajectory(tmp_path):
 def test_time_restart_without_trajectory_column_is_noted(tmp_path):
     t, x, y = curves(5)
     text = csv_text(np.r_[t, t], np.r_[x, x + 1], np.r_[y, y])
+    # default: the restart splits the file into two trajectories, nothing merged
     rec = read(write(tmp_path, "rs.csv", text), outliers="ignore")
+    assert rec.trajectory_names == ("1", "1 (part 2)")
+    assert rec.n_samples == 10 and rec.log.merged_rows == 0
+    assert any("time jumps back at row 7" in n for n in rec.log.notes)
+    # asked to sort: the old behaviour, with the note
+    rec = read(write(tmp_path, "rs.csv", text), outliers="ignore", time_jumps="sort")
     assert any("time starts over at row 7" in n for n in rec.log.notes)
 
 

@@ -50,10 +50,13 @@ def _images(html: str) -> list[str]:
 
 def test_folder_has_page_figures_json_and_csv(report_dir, boot_fit):
     names = sorted(p.name for p in report_dir.iterdir())
-    expected = {"index.html", "result.json", "cleaned.csv"}
+    expected = {"index.html", "result.json", "cleaned.csv", "fitdyn-manifest.json"}
     for kind in plots.KINDS:
         expected |= {f"figure-{kind}.png", f"figure-{kind}.svg"}
     assert set(names) == expected
+    # the manifest lists every other file, so a later run may replace the folder
+    listed = json.loads((report_dir / "fitdyn-manifest.json").read_text())["files"]
+    assert set(listed) == expected - {"fitdyn-manifest.json"}
     for kind in plots.KINDS:
         assert (report_dir / f"figure-{kind}.png").read_bytes().startswith(PNG_MAGIC)
         root = ET.parse(report_dir / f"figure-{kind}.svg").getroot()
@@ -140,7 +143,13 @@ def test_rerun_replaces_and_failure_keeps_the_old_folder(boot_fit, tmp_path, mon
     # success replaces the folder's content entirely
     report.write_report(boot_fit, folder, formats=("svg",), kinds=("eigen",))
     now = sorted(p.name for p in folder.iterdir())
-    assert now == ["cleaned.csv", "figure-eigen.svg", "index.html", "result.json"]
+    assert now == [
+        "cleaned.csv",
+        "figure-eigen.svg",
+        "fitdyn-manifest.json",
+        "index.html",
+        "result.json",
+    ]
     old = {p.name: p.read_bytes() for p in folder.iterdir()}
 
     # a failing figure leaves the previous report untouched and no temporary folder
@@ -162,13 +171,13 @@ def test_a_folder_that_is_not_a_report_is_never_replaced(boot_fit, tmp_path):
     data = tmp_path / "my data"
     data.mkdir()
     (data / "run1.csv").write_text("t,a,b\n")
-    with pytest.raises(ReportError, match=r"holds other files \(run1.csv\)"):
+    with pytest.raises(ReportError, match=r"files fitdyn did not list as its own \(run1.csv"):
         report.write_report(boot_fit, data, kinds=("phase",))
     assert sorted(p.name for p in data.iterdir()) == ["run1.csv"]
     # an index.html that fitdyn did not write is not replaced either
     (data / "run1.csv").unlink()
     (data / "index.html").write_text("<html>my notes</html>")
-    with pytest.raises(ReportError, match="not a fitdyn report"):
+    with pytest.raises(ReportError, match=r"did not list as its own \(index.html"):
         report.write_report(boot_fit, data, kinds=("phase",))
     assert (data / "index.html").read_text() == "<html>my notes</html>"
     # an empty folder is fine
