@@ -107,14 +107,23 @@ def _add_import_options(p: argparse.ArgumentParser) -> None:
         "--time-jumps",
         choices=("split", "refuse", "sort"),
         default=None,
-        help="time jumping back in file order (a repeated clock hour, a clock restart): "
-        "split into separate trajectories (default), stop with an error, or sort by time",
+        help="what to do when time jumps back in file order (a repeated clock hour, a clock "
+        "restart): split (into separate trajectories; the default), refuse (stop with an "
+        "error) or sort (sort by time); choices: %(choices)s",
     )
     g.add_argument(
-        "--max-bytes", type=int, default=None, metavar="N", help="largest file read (bytes)"
+        "--max-bytes",
+        type=int,
+        default=None,
+        metavar="N",
+        help="largest file read, in bytes (default: 1 GiB)",
     )
     g.add_argument(
-        "--max-line", type=int, default=None, metavar="N", help="longest line read (characters)"
+        "--max-line",
+        type=int,
+        default=None,
+        metavar="N",
+        help="longest line read, in characters (default: 100000)",
     )
 
 
