@@ -116,6 +116,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("file")
     _add_import_options(p)
     _add_estimation_options(p, seed_help="random seed")
+    p.add_argument(
+        "--window",
+        metavar="SPEC",
+        help="fit part of the data: amplitude:F keeps each trajectory after it settles "
+        "within F (0-1) of its largest distance from the equilibrium; time:START:END "
+        "keeps that time interval (either bound may be empty)",
+    )
     o = p.add_argument_group("output")
     o.add_argument("--json", metavar="PATH", help="write the result as JSON")
     o.add_argument("--report", metavar="DIR", help="write a self-contained HTML report folder")
@@ -253,6 +260,7 @@ def _cmd_fit(args: argparse.Namespace) -> int:
         args.file,
         **_estimation_options(args),
         quiet=args.quiet or not sys.stderr.isatty(),
+        window=args.window,
         **_read_options(args),
     )
     if not args.quiet:

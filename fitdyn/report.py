@@ -146,6 +146,24 @@ def _verdict(fit: Any) -> list[dict[str, str]]:
     return cells
 
 
+def _diagnostics_context(fit: Any) -> tuple[str | None, list[dict[str, str]]]:
+    """The not-reliable reason (or None) and the rows of the checks table."""
+    from fitdyn.diagnostics import unreliable_reason
+
+    diags = tuple(getattr(fit, "diagnostics", ()) or ())
+    rows = [
+        {
+            "name": d.name,
+            "verdict": d.verdict,
+            "statistic": "" if d.statistic is None else f"{d.statistic:.3g}",
+            "threshold": "" if d.threshold is None else f"{d.threshold:.3g}",
+            "advice": d.advice,
+        }
+        for d in diags
+    ]
+    return unreliable_reason(diags), rows
+
+
 def _rate_unit(fit: Any) -> str:
     tu = fit.recording.time_unit
     return f"1/{tu}" if tu else ""
@@ -756,6 +774,10 @@ def render_html(fit: Any, figures: list[dict[str, Any]], files: list[tuple[str, 
             "intervals from the uncertainty analysis."
         )
     warnings = list(fit.warnings)
+    unreliable, checks = _diagnostics_context(fit)
+    verdict = _verdict(fit)
+    if unreliable:  # no confident card when a check fails
+        verdict = [{**cell, "tone": "muted"} for cell in verdict]
     css = (_TEMPLATES / "report.css").read_text(encoding="utf-8")
     from markupsafe import Markup
 
@@ -768,7 +790,9 @@ def render_html(fit: Any, figures: list[dict[str, Any]], files: list[tuple[str, 
         "method": fit.method,
         "written": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
         "css": Markup(css),  # our own style sheet, not user data
-        "verdict": _verdict(fit),
+        "verdict": verdict,
+        "unreliable": unreliable,
+        "checks": checks,
         "warnings": warnings,
         "matrix": _matrix(fit),
         "summary_rows": _summary_rows(fit),
