@@ -4,17 +4,22 @@
 :class:`Diagnostic` per check, in the order of :data:`NAMES`:
 
 ``nonlinearity``
-    Quadratic and cubic terms of the states (``x1^2, x1 x2, x2^2`` and the four
-    cubic monomials) are added to a regression form of the model and tested by the
-    F test, per channel (the smaller p-value, Bonferroni-corrected for the two
-    channels).  Two forms are available: the one-step form (the fitted model's
-    one-step prediction errors regressed on ``h_k [1, x_k, q(x_k)]``, exact on any
-    steps; its errors are white under process noise) and the integral form
-    (``x(t_i) - x(t_0)`` on the running integrals of ``[x, q(x)]``; its errors are
-    white under measurement noise).  The form whose restricted residuals have the
-    smaller lag-1 autocorrelation is used, so the test's error model fits the data.
-    The cubic terms are there because a symmetric nonlinearity (a pendulum's
-    ``sin theta``) has no quadratic part.
+    Quadratic and cubic terms of the states (``x1^2, x1 x2, x2^2``, then also the
+    four cubic monomials; standardised states) are added to a regression form of
+    the fitted model and tested by F tests (the quadratic block, and both blocks,
+    per channel; the smallest p-value, Bonferroni-corrected for the number of
+    tests).  The one-step form regresses the fitted model's one-step prediction
+    errors ``x_{k+1} - expm(A h_k) x_k - g_k`` on ``h_k [1, x_{k-1}, q(x_{k-1})]``:
+    exact on any steps, the terms taken at the sample before so that sensor noise
+    does not enter them, rows weighted by ``1 / sqrt(h_k)``, and a moving average of
+    order one in the errors (sensor noise) removed by feasible GLS.  The curve form
+    regresses the data minus the fitted curve on the curve's sensitivities to the
+    terms (a score test of the output-error model, errors white under sensor
+    noise).  The output-error ``trajectory`` fit is tested in the curve form, every
+    other estimator in the one-step form, so the test's error model is the chosen
+    estimator's.  Samples flagged as outliers are left out.  The cubic terms are
+    there because a symmetric nonlinearity (a pendulum's ``sin theta``) has no
+    quadratic part.
 ``whiteness``
     Ljung-Box test (Ljung & Box, Biometrika 1978) of the residuals of the estimator
     actually used -- the numbers the residual figure prints (:func:`whiteness_test`
@@ -45,9 +50,13 @@
     exactly singular system passes this test more often than 5 % of the time (the
     benchmark's "singular" row says how often).
 ``agreement``
-    A cheap second estimator suited to the same noise (:data:`SECOND_ESTIMATOR`) is
-    fitted and its trace and determinant compared with the chosen estimator's:
-    ``|difference| / sqrt(var1 + var2)`` from their asymptotic covariances.
+    A cheap second estimator suited to the same noise (:data:`SECOND_ESTIMATOR`:
+    the integral regression against the output-error fit, the one-step fit on every
+    second sample against the one-step fit) is fitted and its trace and determinant
+    compared with the chosen estimator's: ``|difference| / sqrt(var1 + var2)`` from
+    their asymptotic covariances (conservative: the two are positively correlated).
+    Estimators with no cheap partner that has a covariance are not compared (the
+    check passes and says so).
 
 Each check's verdict is ``"pass"``, ``"warn"`` or ``"fail"``; a fail makes
 :func:`unreliable_reason` return a plain-words reason, which the summary prints as
@@ -487,9 +496,11 @@ def _curve_form(
 
 
 def nonlinearity_test(
-    rec: Recording, matrix: np.ndarray, offset: np.ndarray
+    rec: Recording, matrix: np.ndarray, offset: np.ndarray, method: str | None = None
 ) -> tuple[float, str, np.ndarray]:
     """F test of quadratic and cubic state terms added to a regression form.
+
+    Samples flagged as outliers by the importer are left out of the test's rows.
 
     Parameters
     ----------
@@ -497,6 +508,11 @@ def nonlinearity_test(
     matrix, offset : ndarray
         The fitted ``A`` and ``b`` (the one-step form tests the fitted model's
         one-step prediction errors).
+    method : str, optional
+        The estimator that gave them: the output-error ``trajectory`` fit (a model of
+        sensor noise) is tested in the curve form, every other estimator in the
+        one-step form; without a method, the form whose restricted residuals have
+        the smaller lag-1 autocorrelation.
 
     Returns
     -------
@@ -518,7 +534,11 @@ def nonlinearity_test(
     seg = np.asarray(rec.segment)
     lagged = first[(first >= 1)]
     lagged = lagged[seg[lagged - 1] == seg[lagged]]
-    if lagged.size >= 20:
+    out = np.asarray(rec.outlier, dtype=bool)
+    lagged = lagged[~(out[lagged - 1] | out[lagged] | out[lagged + 1])]
+    want_one = method is None or method != "trajectory"
+    want_curve = method is None or method == "trajectory"
+    if want_one and lagged.size >= 20:
         hk = rec.times[lagged + 1] - rec.times[lagged]
         A = np.broadcast_to(np.asarray(matrix, dtype=float), (lagged.size, 2, 2))
         E = linalg2.expm(A, hk)
@@ -544,13 +564,14 @@ def nonlinearity_test(
             lag = abs(_lag1(np.column_stack(rrs), seg[lagged]))
             results.append(("one-step", np.array(Fs), np.array(ps), lag))
     # curve form: errors white under measurement noise
-    cur = _curve_form(rec, matrix, offset, u, q)
+    cur = _curve_form(rec, matrix, offset, u, q) if want_curve else None
     if cur is not None:
         y, Zr, Zx = cur
         _, _, rr = _f_test(y, Zr, Zx)
         n = rec.n_samples
         rr2 = np.column_stack([rr[:n, 0], rr[n:, 0]])
-        F, p = _nested_tests(y, Zr, Zx, 6)
+        rows = np.concatenate([~out, ~out])
+        F, p = _nested_tests(y[rows], Zr[rows], Zx[rows], 6)
         results.append(("curve", np.array(F), np.array(p), abs(_lag1(rr2, seg))))
     results = [r for r in results if np.all(np.isfinite(r[2]))]
     if not results:
@@ -574,7 +595,7 @@ def _nested_tests(
 
 
 def _check_nonlinearity(rec: Recording, est: Any) -> Diagnostic:
-    p, form, F = nonlinearity_test(rec, est.matrix, est.offset)
+    p, form, F = nonlinearity_test(rec, est.matrix, est.offset, est.method)
     what = (
         f"quadratic and cubic state terms added to the {form} form: p = {p:.3g} "
         f"(F = {np.max(F):.3g})"
@@ -584,8 +605,9 @@ def _check_nonlinearity(rec: Recording, est: Any) -> Diagnostic:
     advice = (
         "the data curve in a way the linear model cannot follow, so the linearisation "
         "and its intervals are biased; fit a window nearer the equilibrium "
-        "(window='amplitude:0.3' in fit(), --window amplitude:0.3 on the command line) "
-        "or a time window where the motion is small (window='time:START:END')"
+        "(window='amplitude:0.3' in fit(), --window amplitude:0.3 on the command line; "
+        "smaller until this check passes) or a time window where the motion is small "
+        "(window='time:START:END')"
     )
     return _by_p("nonlinearity", p, what, advice)
 
@@ -1050,9 +1072,8 @@ def select_window(rec: Recording, window: Any, equilibrium: np.ndarray | None = 
     window : str or tuple
         See :func:`parse_window`.
     equilibrium : ndarray, shape (2,), optional
-        Centre of an amplitude window (default: the median of the last tenth of
-        the samples of each trajectory is not used; the caller passes a first
-        fit's equilibrium, and without one the channels' medians).
+        Centre of an amplitude window (:func:`fitdyn.fit` passes the given
+        equilibrium or a first fit's); without one, the channels' medians.
 
     Returns
     -------
