@@ -426,10 +426,11 @@ class Fit:
         """Notebook view: the key numbers in a small table."""
         rec = self.recording
         esc = html.escape
+        verdict, headline = self._diagnostics_verdict(self.label)
         rows = [
             ("method", esc(self.method)),
             ("channels", esc(", ".join(rec.channels))),
-            ("type", esc(self.label)),
+            ("type", esc(verdict)),
             ("stability", esc(self.stability)),
         ]
         if self.uncertainty is not None:
@@ -440,6 +441,8 @@ class Fit:
         rows.insert(2, ("matrix A", mat))
         if self.equilibrium is not None:
             rows.insert(3, ("equilibrium", esc(", ".join(f"{v:.4g}" for v in self.equilibrium))))
+        if headline:
+            rows.insert(0, ("NOT RELIABLE", esc(headline.split(None, 2)[-1])))
         for d in self.diagnostics:
             rows.append((f"check: {esc(d.name)}", f"{esc(d.verdict)}: {esc(d.advice)}"))
         body = "".join(

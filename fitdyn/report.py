@@ -778,6 +778,16 @@ def render_html(fit: Any, figures: list[dict[str, Any]], files: list[tuple[str, 
     verdict = _verdict(fit)
     if unreliable:  # no confident card when a check fails
         verdict = [{**cell, "tone": "muted"} for cell in verdict]
+    from fitdyn.diagnostics import NON_ISOLATED, non_isolated_flag
+
+    if (
+        verdict
+        and fit.label != "non-isolated equilibria"
+        and "non-isolated" not in verdict[0]["sub"]
+        and non_isolated_flag(getattr(fit, "diagnostics", ()))
+    ):
+        sub = verdict[0]["sub"]
+        verdict[0] = {**verdict[0], "sub": (sub + "; " if sub else "") + NON_ISOLATED}
     css = (_TEMPLATES / "report.css").read_text(encoding="utf-8")
     from markupsafe import Markup
 

@@ -383,3 +383,31 @@ def test_cli_window_option(tmp_path, capsys):
     assert main(["fit", str(path), "--window", "sideways"]) == 2
     err = capsys.readouterr().err
     assert "window must be" in err and len(err.strip().splitlines()) == 1
+
+
+def test_a_flagged_outlier_is_not_read_as_curvature():
+    # a linear node (solve_ivp) with one 5 K spike, which the importer flags and keeps
+    A = [[-0.35, 0.30], [0.15, -0.20]]
+    t = np.linspace(0.0, 60.0, 240)
+    data_t, X = _linear(A, [8.0, 3.0], t, pct=1.0, seed=16)
+    X = X.copy()
+    X[120, 0] += 5.0
+    f = fitdyn.fit((data_t, X), quiet=True)
+    assert f.recording.outlier.sum() >= 1
+    assert _by_name(f)["nonlinearity"].verdict == "pass"
+
+
+def test_demo_recordings_of_linear_systems_pass_nonlinearity():
+    # the demo files are simulated from linear models (data_demo/README.md)
+    from pathlib import Path
+
+    demo = Path(__file__).resolve().parent.parent / "data_demo"
+    for name in ("chamber_cooling.csv", "torsion_rig.csv", "reactor_runaway.csv"):
+        f = fitdyn.fit(demo / name, quiet=True)
+        assert _by_name(f)["nonlinearity"].verdict == "pass", name
+
+
+def test_notebook_view_says_not_reliable_first(pendulum_fit, good_fit):
+    page = pendulum_fit._repr_html_()
+    assert page.index("NOT RELIABLE") < page.index(">type<")
+    assert "NOT RELIABLE" not in good_fit._repr_html_()
