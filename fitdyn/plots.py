@@ -22,7 +22,9 @@ One entry point, :func:`plot`, draws one of the :data:`KINDS`:
 ``"residuals"``
     Autocorrelation of the estimator's residuals per channel with the
     ``+-1.96 / sqrt(n)`` band and the Ljung-Box p-value (Ljung & Box, Biometrika
-    1978).  Returns the Figure (two panels).
+    1978) from :func:`fitdyn.diagnostics.whiteness_test`, the function the
+    ``whiteness`` check uses, so the figure and the check print the same numbers.
+    Returns the Figure (two panels).
 
 The kinds that need the uncertainty analysis (``"eigen"``, ``"tracedet"``, the
 equilibrium region of ``"phase"``) draw the point estimate only, with a note, when
