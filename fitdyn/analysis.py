@@ -89,6 +89,9 @@ class Fit:
         Tolerance used for the boundary classes.
     warnings : tuple of str
         Everything the user must know, from every stage.
+    diagnostics : tuple of Diagnostic
+        The adequacy checks (:mod:`fitdyn.diagnostics`); every warn or fail is
+        also in ``warnings``.
     """
 
     recording: Recording
@@ -101,6 +104,7 @@ class Fit:
     uncertainty: Any = None
     rtol: float = classify.DEFAULT_RTOL
     warnings: tuple[str, ...] = ()
+    diagnostics: tuple = ()
 
     # -- convenient views ---------------------------------------------------------
     @property
@@ -269,6 +273,7 @@ class Fit:
             "verdict": self.verdict.to_dict(),
             "estimator": self.estimate.to_dict(),
             "cleaning": rec.describe(),
+            "diagnostics": [d.to_dict() for d in self.diagnostics],
             "warnings": list(self.warnings),
             "caution": CAUTION,
         }
@@ -526,6 +531,7 @@ class Fit:
             "" if verbose else f" ({more}: --verbose, or summary(verbose=True))"
         )
         lines.extend(_wrap("Method           ", method_text))
+        lines.extend(self._diagnostics_lines())
         if self.warnings:
             lines.append("")
             lines.append("Warnings")
@@ -541,6 +547,19 @@ class Fit:
         lines.append("")
         lines.extend(_wrap("Caution: ", CAUTION, ""))
         return "\n".join(lines)
+
+    def _diagnostics_lines(self) -> list[str]:
+        """The "Checks" block of the summary: one line per adequacy check."""
+        if not self.diagnostics:
+            return []
+        lines = ["", "Checks"]
+        w = max(len(d.name) for d in self.diagnostics) + 2
+        for d in self.diagnostics:
+            stat = "" if d.statistic is None else f"{d.statistic:.3g}"
+            thr = "" if d.threshold is None else f"(threshold {d.threshold:.3g})"
+            note = "see Warnings" if d.verdict != "pass" else ""
+            lines.append(f"  {d.name:<{w}}{d.verdict:<6}{stat:>10} {thr:<20}{note}".rstrip())
+        return lines
 
     def __str__(self) -> str:
         return self.summary()
@@ -608,6 +627,8 @@ class Fit:
             )
         rows.append(("method", esc(self.method)))
         rows.append(("point estimate", esc(self._point_estimate_text())))
+        for d in self.diagnostics:
+            rows.append((f"check: {d.name}", f"{esc(d.verdict)}: {esc(d.advice)}"))
         body = "".join(
             f"<tr><th style='text-align:left;padding-right:1em'>{esc(k)}</th><td>{val}</td></tr>"
             for k, val in rows
@@ -672,6 +693,7 @@ def fit(
     rtol: float = classify.DEFAULT_RTOL,
     settings: dict[str, Any] | None = None,
     quiet: bool = False,
+    window: Any = None,
     **read_options: Any,
 ) -> Fit:
     """Estimate the linear dynamics of a recording and classify its equilibrium.
@@ -715,6 +737,14 @@ def fit(
         Estimator settings (e.g. ``{"derivative": "spline"}``).
     quiet : bool
         No progress bar.
+    window : str or tuple, optional
+        Fit only part of the data: ``"amplitude:F"`` keeps, of each trajectory,
+        the part after it last leaves the region within ``F`` (0 < F <= 1) of its
+        largest distance from the equilibrium (a first fit on all data gives the
+        equilibrium unless it is given); ``"time:START:END"`` keeps the samples in
+        that time interval.  What the ``nonlinearity`` check advises when the
+        motion is too large for a linearisation (see
+        :func:`fitdyn.diagnostics.select_window`).
     **read_options
         Passed to :func:`fitdyn.read` (``time``, ``channels``, ``trajectory``...).
 
@@ -727,6 +757,16 @@ def fit(
     eq = check_fit_args(equilibrium, bootstrap, confidence, seed, margin, rtol)
     rec = _as_recording(data, read_options)
     check_scale(rec)
+    from fitdyn import diagnostics
+
+    if window is not None:
+        centre = eq
+        if centre is None and diagnostics.parse_window(window)[0] == "amplitude":
+            _refuse_constant(rec)
+            with numerical_guard(rec.source, method):
+                centre = estimate(rec, method, None, **(settings or {}))[0].equilibrium
+        rec = diagnostics.select_window(rec, window, centre)
+    _refuse_constant(rec)
     with numerical_guard(rec.source, method):
         est, estimator = estimate(rec, method, eq, **(settings or {}))
     if not (np.all(np.isfinite(est.matrix)) and np.all(np.isfinite(est.offset))):
@@ -779,6 +819,8 @@ def fit(
                     quiet=quiet,
                 )
         warnings.extend(w for w in unc.warnings if w not in warnings)
+    checks = diagnostics.check(rec, est, unc, label)
+    warnings.extend(d.message for d in checks if d.verdict != "pass")
     return Fit(
         recording=rec,
         estimate=est,
@@ -790,4 +832,22 @@ def fit(
         uncertainty=unc,
         rtol=rtol,
         warnings=tuple(warnings),
+        diagnostics=checks,
+    )
+
+
+def _refuse_constant(rec: Recording) -> None:
+    """Refuse a recording with a constant channel: it determines no class."""
+    from fitdyn.diagnostics import constant_channel
+
+    j = constant_channel(rec)
+    if j is None:
+        return
+    from fitdyn.errors import EstimationError
+
+    v = float(rec.values[0, j]) if rec.n_samples else float("nan")
+    raise EstimationError(
+        f"{rec.source}: column '{rec.channels[j]}' is constant (all {rec.n_samples} "
+        f"samples equal {v:.6g}): a channel that never moves does not determine its "
+        "row of A, so no class can be given; record data in which both channels vary"
     )

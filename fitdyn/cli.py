@@ -188,6 +188,13 @@ def build_parser() -> argparse.ArgumentParser:
     _add_estimation_options(
         p, seed_help="random seed (default: none, fresh numbers each run)", bootstrap=1000
     )
+    p.add_argument(
+        "--window",
+        metavar="SPEC",
+        help="fit part of the data: amplitude:F keeps each trajectory after it settles "
+        "within F (0-1) of its largest distance from the equilibrium; time:START:END "
+        "keeps that time interval (either bound may be empty) (default: all the data)",
+    )
     o = p.add_argument_group("output")
     o.add_argument("--json", metavar="PATH", help="write the result as JSON (default: not written)")
     o.add_argument(
@@ -443,6 +450,7 @@ def _cmd_fit(args: argparse.Namespace) -> int:
         args.file,
         **_estimation_options(args),
         quiet=args.quiet or not sys.stderr.isatty(),
+        window=args.window,
         **_read_options(args),
     )
     if not args.quiet:

@@ -22,7 +22,9 @@ One entry point, :func:`plot`, draws one of the :data:`KINDS`:
 ``"residuals"``
     Autocorrelation of the estimator's residuals per channel with the
     ``+-1.96 / sqrt(n)`` band and the Ljung-Box p-value (Ljung & Box, Biometrika
-    1978) (two panels).
+    1978) from :func:`fitdyn.diagnostics.whiteness_test`, the function the
+    ``whiteness`` check uses, so the figure and the check print the same numbers
+    (two panels).
 
 Every kind returns the same type: the matplotlib :class:`~matplotlib.figure.Figure`
 it drew on (the top-level Figure, also when an Axes or a SubFigure was passed);
@@ -1190,13 +1192,6 @@ def _acf(x: np.ndarray, nlags: int) -> np.ndarray:
     return np.array([1.0] + [float(d[:-k] @ d[k:]) / denom for k in range(1, L + 1)])
 
 
-def _ljung_box(x: np.ndarray, lags: int) -> float:
-    from statsmodels.stats.diagnostic import acorr_ljungbox
-
-    res = acorr_ljungbox(x, lags=[lags], return_df=True)
-    return float(res["lb_pvalue"].iloc[0])
-
-
 def _residuals(
     fit: Any, ax: Any = None, *, source: str = "estimate", nlags: int | None = None
 ) -> Any:
@@ -1217,7 +1212,10 @@ def _residuals(
     fig, axes = _panel_axes(ax, (1, 2), (10.0, 3.8), sharey=True)
     nm = _names(fit)
     L = int(nlags) if nlags is not None else max(1, min(24, n // 4))
-    lb_lags = max(1, min(10, n // 5))
+    from fitdyn.diagnostics import whiteness_test
+
+    # the same numbers the whiteness check reports (one function for both)
+    white = whiteness_test(resid, fit.method if source == "estimate" else "")
     band = 1.96 / np.sqrt(max(n, 1))
     for j in range(2):
         a = axes[0, j]
@@ -1246,8 +1244,8 @@ def _residuals(
                 zorder=4,
                 ls="none",
             )
-        p = _ljung_box(x, lb_lags)
-        a.set_title(f"{nm.channels[j]}: Ljung-Box p = {p:.3g} (lag {lb_lags})")
+        p = float(white.p_value[j])
+        a.set_title(f"{nm.channels[j]}: Ljung-Box p = {p:.3g} ({white.describe()})")
         a.set_xlabel("lag (samples)")
         a.set_xlim(0.3, L + 0.7)
         a.set_ylim(min(-1.0, float(np.min(r)) - 0.05) if np.min(r) < -1 else -1.0, 1.0)

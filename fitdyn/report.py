@@ -105,6 +105,8 @@ def _verdict(fit: Any) -> list[dict[str, str]]:
         value, sub = "not reliable", v.headline().removeprefix("not reliable: ")
     elif not v.assessed:
         value, sub = fit.label, "point estimate only: no uncertainty analysis (bootstrap 0)"
+        if v.cannot_exclude:
+            sub += "; cannot exclude " + join_labels([a_label(c) for c in v.cannot_exclude])
     elif v.label != "undetermined":
         value = v.label
         sub = f"P = {fmt.prob(v.probabilities.get(v.label))} at the " + (
@@ -139,6 +141,24 @@ def _verdict(fit: Any) -> list[dict[str, str]]:
         sub = (f"in {ru}; " + sub) if sub else f"in {ru}"
     cells.append({"what": "eigenvalues", "value": ", ".join(values), "sub": sub, "tone": ""})
     return cells
+
+
+def _diagnostics_context(fit: Any) -> tuple[str | None, list[dict[str, str]]]:
+    """The not-reliable reason (or None) and the rows of the checks table."""
+    from fitdyn.diagnostics import unreliable_reason
+
+    diags = tuple(getattr(fit, "diagnostics", ()) or ())
+    rows = [
+        {
+            "name": d.name,
+            "verdict": d.verdict,
+            "statistic": "" if d.statistic is None else f"{d.statistic:.3g}",
+            "threshold": "" if d.threshold is None else f"{d.threshold:.3g}",
+            "advice": d.advice,
+        }
+        for d in diags
+    ]
+    return unreliable_reason(diags), rows
 
 
 def _rate_unit(fit: Any) -> str:
@@ -778,6 +798,8 @@ def render_html(fit: Any, figures: list[dict[str, Any]], files: list[tuple[str, 
             "intervals from the uncertainty analysis."
         )
     warnings = list(fit.warnings)
+    unreliable, checks = _diagnostics_context(fit)
+    verdict = _verdict(fit)  # neutral cards when a check failed (Verdict.tone)
     css = (_TEMPLATES / "report.css").read_text(encoding="utf-8")
     from markupsafe import Markup
 
@@ -790,7 +812,9 @@ def render_html(fit: Any, figures: list[dict[str, Any]], files: list[tuple[str, 
         "method": fit.method,
         "written": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
         "css": Markup(css),  # our own style sheet, not user data
-        "verdict": _verdict(fit),
+        "verdict": verdict,
+        "unreliable": unreliable,
+        "checks": checks,
         "warnings": warnings,
         "matrix": _matrix(fit),
         "summary_rows": _summary_rows(fit),

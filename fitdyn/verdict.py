@@ -156,7 +156,10 @@ class Verdict:
         """E.g. ``stable spiral (P 0.99)`` or ``undetermined: stable or unstable
         spiral (P 0.50 / 0.50); cannot exclude a center``."""
         if not self.assessed:
-            return f"{self.point_label} (point estimate; no uncertainty analysis)"
+            text = f"{self.point_label} (point estimate; no uncertainty analysis)"
+            if self.cannot_exclude:
+                text += "; cannot exclude " + join_labels([a_label(c) for c in self.cannot_exclude])
+            return text
         probable = [c for c in self.candidates if c in self.probabilities]
         if self.label != "undetermined":
             text = f"{self.label} (P {prob(self.probabilities.get(self.label))})"
@@ -179,9 +182,15 @@ class Verdict:
     def headline(self) -> str:
         """The one-line answer that opens the summary, the report and the notebook view."""
         if self.not_reliable:
-            return "not reliable: " + "; ".join(
-                f"{name} failed ({advice})" if advice else f"{name} failed"
-                for name, advice in self.not_reliable
+            from fitdyn.diagnostics import FAILURE_REASONS
+
+            parts = []
+            for name, advice in self.not_reliable:
+                said = f"{name} failed" + (f" ({advice})" if advice else "")
+                reason = FAILURE_REASONS.get(name)
+                parts.append(f"{reason}: {said}" if reason else said)
+            return (
+                "not reliable: " + "; ".join(parts) + f". The fit alone reads: {self.class_text()}"
             )
         if not self.assessed:
             return (
@@ -233,6 +242,18 @@ def _failed_checks(fit: Any) -> tuple[tuple[str, str], ...]:
     return tuple(out)
 
 
+def _flagged_non_isolated(fit: Any) -> tuple[str, ...]:
+    """``("non-isolated equilibria",)`` when the identifiability check cannot exclude
+    them and the point label is not already that class."""
+    from fitdyn.diagnostics import non_isolated_flag
+
+    if fit.label != "non-isolated equilibria" and non_isolated_flag(
+        getattr(fit, "diagnostics", ()) or ()
+    ):
+        return ("non-isolated equilibria",)
+    return ()
+
+
 def verdict_of(fit: Any) -> Verdict:
     """The :class:`Verdict` of a fit (``fit.verdict`` calls this).
 
@@ -250,6 +271,7 @@ def verdict_of(fit: Any) -> Verdict:
             label=fit.label,
             candidates=(),
             confidence=None,
+            cannot_exclude=_flagged_non_isolated(fit),
             point_label=fit.label,
             point_stability=fit.stability,
             not_reliable=failed,
@@ -274,6 +296,7 @@ def verdict_of(fit: Any) -> Verdict:
         if v > 0 and v >= 1 - c - _EPS
     ]
     cannot = tuple(k for k in getattr(unc, "consistent_with", ()) or () if k not in ranked)
+    cannot += tuple(k for k in _flagged_non_isolated(fit) if k not in cannot + tuple(ranked))
     failure_label = str(getattr(unc, "failure_label", "failed fit"))
     failed_fraction = float(probs.get(failure_label, 0.0)) if failure_label not in classes else 0.0
     return Verdict(

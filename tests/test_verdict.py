@@ -106,7 +106,7 @@ def test_failed_adequacy_checks_make_it_not_reliable():
     v = verdict_of(_stand_in(unc, diagnostics=(ok, check)))
     assert v.headline() == (
         "not reliable: residual whiteness failed (the linear model leaves structure; try "
-        "another method)"
+        "another method). The fit alone reads: stable spiral (P 1.00)"
     )
     assert v.to_dict()["not_reliable"] == ["residual whiteness"]
     assert v.tone == "neutral"
@@ -224,12 +224,10 @@ def test_fit_level_verdict_uses_failed_diagnostics():
     rec = fitdyn.simulate([[-1.0, 0.3], [0.2, -0.4]], [0, 0], [2.0, 1.0],
                           np.linspace(0, 10, 201), seed=0)  # fmt: skip
     res = fitdyn.fit(rec, method="integral", bootstrap=0)
-    failed = SimpleNamespace(name="stationarity", statistic=5.0, threshold=1.0,
-                             verdict="fail", advice="split the record")  # fmt: skip
-    if "diagnostics" in {f.name for f in dataclasses.fields(res)}:
-        res = dataclasses.replace(res, diagnostics=(failed,))
-    else:  # before the diagnostics field exists
-        object.__setattr__(res, "diagnostics", (failed,))
+    from fitdyn.diagnostics import Diagnostic
+
+    failed = Diagnostic("stationarity", 5.0, 1.0, "fail", "split the record")
+    res = dataclasses.replace(res, diagnostics=(failed,))
     assert res.verdict.not_reliable == (("stationarity", "split the record"),)
     assert "Verdict          not reliable: stationarity failed (split the record)" in (
         res.summary()

@@ -1,0 +1,419 @@
+"""Tests of the adequacy checks (fitdyn.diagnostics) on constructed good and bad data.
+
+The data are simulated with scipy's general ODE solver (scipy.integrate.solve_ivp),
+not with fitdyn's own simulator, and sampled with seeded Gaussian sensor noise.
+"""
+
+from __future__ import annotations
+
+import functools
+import re
+from dataclasses import FrozenInstanceError, replace
+
+import numpy as np
+import pytest
+from scipy.integrate import solve_ivp
+
+import fitdyn
+from fitdyn import diagnostics as dg
+from fitdyn.errors import EstimationError, FitdynError
+
+G_OVER_L = 9.81  # pendulum g / L (1 m arm)
+
+
+_fit = functools.partial(fitdyn.fit, bootstrap=0)  # intervals only where a test asks
+
+
+def _ivp(f, y0, t):
+    sol = solve_ivp(f, (t[0], t[-1]), y0, t_eval=t, rtol=1e-10, atol=1e-12, method="DOP853")
+    assert sol.success
+    return sol.y.T
+
+
+def _noisy(X, pct, seed):
+    rng = np.random.default_rng(seed)
+    return X + rng.normal(0.0, 1.0, X.shape) * (pct / 100.0) * X.std(axis=0)
+
+
+def _linear(A, x0, t, pct=1.0, seed=0):
+    A = np.asarray(A, dtype=float)
+    return (t, _noisy(_ivp(lambda _t, y: A @ y, x0, t), pct, seed))
+
+
+def _pendulum(theta0, t, c=0.3, pct=1.0, seed=0):
+    X = _ivp(lambda _t, y: [y[1], -G_OVER_L * np.sin(y[0]) - c * y[1]], [theta0, 0.0], t)
+    return (t, _noisy(X, pct, seed))
+
+
+def _by_name(fit):
+    return {d.name: d for d in fit.diagnostics}
+
+
+# a lightly damped spiral: the series RLC natural response with alpha = R / (2 L) = 0.25,
+# omega0 = 1 / sqrt(L C) = 2 (any circuits text, e.g. Nilsson & Riedel, from memory)
+SPIRAL = [[0.0, 1.0], [-4.0, -0.5]]
+
+
+@pytest.fixture(scope="module")
+def good_fit():
+    t = np.linspace(0.0, 20.0, 200)
+    return _fit(_linear(SPIRAL, [2.0, 0.0], t, pct=2.0, seed=1), quiet=True)
+
+
+@pytest.fixture(scope="module")
+def pendulum_fit():
+    t = np.linspace(0.0, 10.0, 200)
+    return _fit(_pendulum(2.5, t, seed=2), quiet=True)
+
+
+# -- the result type -----------------------------------------------------------------
+def test_diagnostic_is_frozen_and_serialises():
+    d = dg.Diagnostic("sampling", 0.2, np.pi / 2, "pass", "fine")
+    assert d.to_dict() == {
+        "name": "sampling",
+        "statistic": 0.2,
+        "threshold": np.pi / 2,
+        "verdict": "pass",
+        "advice": "fine",
+    }
+    with pytest.raises(FrozenInstanceError):
+        d.verdict = "fail"  # type: ignore[misc]
+    with pytest.raises(ValueError, match="verdict"):
+        dg.Diagnostic("sampling", 0.2, 1.0, "maybe", "x")
+    assert dg.Diagnostic("x", float("inf"), None, "fail", "y").to_dict()["statistic"] is None
+
+
+def test_every_fit_carries_all_checks_in_order(good_fit):
+    assert tuple(d.name for d in good_fit.diagnostics) == dg.NAMES
+    out = good_fit.to_dict()
+    assert [d["name"] for d in out["diagnostics"]] == list(dg.NAMES)
+    assert set(out["diagnostics"][0]) == {"name", "statistic", "threshold", "verdict", "advice"}
+    for d in good_fit.diagnostics:
+        if d.verdict != "pass":
+            assert d.message in good_fit.warnings
+
+
+def test_good_linear_data_pass_every_check(good_fit):
+    verdicts = {d.name: d.verdict for d in good_fit.diagnostics}
+    assert verdicts == dict.fromkeys(dg.NAMES, "pass")
+    assert dg.unreliable_reason(good_fit.diagnostics) is None
+    text = good_fit.summary()
+    assert "\nChecks\n" in text
+    assert "not reliable" not in text
+
+
+# -- nonlinearity ----------------------------------------------------------------------
+def test_large_pendulum_swing_fails_nonlinearity_and_the_headline_says_so(pendulum_fit):
+    d = _by_name(pendulum_fit)["nonlinearity"]
+    assert d.verdict == "fail"
+    assert d.statistic < dg.THRESHOLDS["nonlinearity"][1]
+    assert "window" in d.advice
+    reason = dg.unreliable_reason(pendulum_fit.diagnostics)
+    assert reason is not None and "nonlinearity" in reason
+    text = pendulum_fit.summary()
+    head = text.index("Verdict          not reliable")
+    assert head < text.index("Eigenvalues")
+    assert d.message in pendulum_fit.warnings
+    assert "check: nonlinearity" in pendulum_fit._repr_html_()
+
+
+def test_small_pendulum_swing_passes_nonlinearity():
+    # at 0.05 rad, sin(theta) = theta to 4e-4 relative: a linear system for the data
+    t = np.linspace(0.0, 10.0, 200)
+    f = _fit(_pendulum(0.05, t, seed=3), quiet=True)
+    assert _by_name(f)["nonlinearity"].verdict == "pass"
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_predator_prey_at_twenty_percent_fails_nonlinearity(seed):
+    # Lotka-Volterra x' = a x - b x y, y' = -c y + d x y: equilibrium (c/d, a/b),
+    # linearised eigenvalues +- i sqrt(a c) (Murray, Mathematical Biology I, from memory)
+    a, b, c, d = 1.0, 1.0, 1.0, 1.0
+    t = np.linspace(0.0, 3 * 2 * np.pi, 200)
+    X = _ivp(lambda _t, y: [a * y[0] - b * y[0] * y[1], -c * y[1] + d * y[0] * y[1]],
+             [1.2, 1.0], t)  # fmt: skip
+    f = _fit((t, _noisy(X, 1.0, seed)), quiet=True)
+    assert _by_name(f)["nonlinearity"].verdict == "fail"
+
+
+def test_van_der_pol_limit_cycle_fails_nonlinearity():
+    mu = 1.0
+    t = np.linspace(0.0, 30.0, 200)
+    X = _ivp(lambda _t, y: [y[1], mu * (1 - y[0] ** 2) * y[1] - y[0]], [2.0, 0.0], t)
+    f = _fit((t, _noisy(X, 2.0, 4)), quiet=True)
+    assert _by_name(f)["nonlinearity"].verdict == "fail"
+
+
+def test_nonlinearity_test_finds_a_pure_quadratic_term_in_noise_free_steps():
+    # x' = -x + 0.3 y^2, y' = -2 y: only a quadratic term is missing from the linear model
+    t = np.linspace(0.0, 6.0, 150)
+    X = _ivp(lambda _t, y: [-y[0] + 0.3 * y[1] ** 2, -2.0 * y[1]], [1.0, 2.0], t)
+    rec = fitdyn.read((t, _noisy(X, 0.5, 5)))
+    est = _fit(rec, quiet=True).estimate
+    p, form, _ = dg.nonlinearity_test(rec, est.matrix, est.offset)
+    assert form in ("one-step", "curve")
+    assert p < 1e-6
+
+
+# -- the fitting window ------------------------------------------------------------------
+def test_amplitude_window_recovers_the_small_signal_eigenvalues():
+    # small-signal pendulum: lambda = -c/2 +- i sqrt(g/L - c^2/4) (damped oscillator,
+    # common practice, no source)
+    c = 0.3
+    t = np.linspace(0.0, 30.0, 600)
+    data = _pendulum(2.5, t, c=c, seed=6)
+    full = _fit(data, quiet=True)
+    win = _fit(data, window="amplitude:0.1", quiet=True)
+    lam = complex(-c / 2, np.sqrt(G_OVER_L - c * c / 4))
+    assert abs(full.eigenvalues[0] - lam) > 0.3
+    assert abs(win.eigenvalues[0] - lam) < 0.05
+    assert _by_name(win)["nonlinearity"].verdict == "pass"
+    log = win.recording.log
+    assert log.balanced()
+    assert log.dropped()["outside the fitting window"] == 600 - win.recording.n_samples
+    assert any("fitting window" in n for n in log.notes)
+
+
+def test_time_window_keeps_the_interval():
+    t = np.linspace(0.0, 30.0, 301)
+    f = _fit(_pendulum(2.5, t, seed=7), window="time:20:", quiet=True)
+    assert f.recording.times.min() >= 20.0
+    assert f.recording.n_samples == 101
+    f2 = _fit(_pendulum(2.5, t, seed=7), window=("time", 5.0, 10.0), quiet=True)
+    assert f2.recording.times.min() >= 5.0 and f2.recording.times.max() <= 10.0
+
+
+@pytest.mark.parametrize(
+    "bad", ["amplitude:0", "amplitude:1.5", "time:5:1", "width:3", "amplitude", "time:a:b"]
+)
+def test_bad_window_is_one_clear_error(bad):
+    with pytest.raises(FitdynError, match="window must be"):
+        dg.parse_window(bad)
+
+
+def test_window_that_leaves_too_little_is_refused():
+    t = np.linspace(0.0, 30.0, 301)
+    with pytest.raises(EstimationError, match="fitting window"):
+        _fit(_pendulum(2.5, t, seed=8), window="time:29.5:40", quiet=True)
+
+
+# -- whiteness: one function for the check and the figure ---------------------------------
+def test_ljung_box_statistic_matches_the_formula():
+    # Q = n (n + 2) sum_k r_k^2 / (n - k) (Ljung & Box, Biometrika 1978)
+    rng = np.random.default_rng(9)
+    x = rng.normal(size=(120, 2))
+    w = dg.whiteness_test(x)
+    assert w.lags == 10 and w.dof == 10 and not w.filtered
+    for j in range(2):
+        d = x[:, j] - x[:, j].mean()
+        r = np.array([d[:-k] @ d[k:] for k in range(1, 11)]) / (d @ d)
+        n = d.size
+        q = n * (n + 2) * np.sum(r**2 / (n - np.arange(1, 11)))
+        assert w.statistic[j] == pytest.approx(q, rel=1e-10)
+        # chi-square upper tail with 10 degrees of freedom (scipy.stats.chi2)
+        from scipy.stats import chi2
+
+        assert w.p_value[j] == pytest.approx(chi2.sf(q, 10), rel=1e-10)
+
+
+def test_moving_average_is_removed_for_the_instrumental_fits():
+    rng = np.random.default_rng(10)
+    e = rng.normal(size=(401, 2))
+    x = e[1:] - 0.6 * e[:-1]  # MA(1), lag-1 autocorrelation -0.44
+    assert dg.whiteness_test(x, "discrete").p_min < 1e-6
+    w = dg.whiteness_test(x, "instrumental")
+    assert w.filtered and w.dof == w.lags - 1
+    assert w.p_min > 1e-3
+
+
+def _autocorrelated(fit, seed=11):
+    rng = np.random.default_rng(seed)
+    m = fit.estimate.residuals.shape[0]
+    r = np.zeros((m, 2))
+    e = rng.normal(size=(m, 2))
+    for k in range(1, m):
+        r[k] = 0.9 * r[k - 1] + e[k]
+    return r
+
+
+def test_figure_and_check_print_the_same_ljung_box_numbers(good_fit):
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    est = replace(good_fit.estimate, residuals=_autocorrelated(good_fit))
+    bad = replace(good_fit, estimate=est)
+    checks = dg.check(bad.recording, est, None, bad.label)
+    white = {d.name: d for d in checks}["whiteness"]
+    assert white.verdict == "fail"  # p ~ 1e-100 must never pass silently
+    fig = bad.plot("residuals")
+    titles = [a.get_title("left") for a in fig.axes if "Ljung-Box" in a.get_title("left")]
+    ps = [float(re.search(r"p = ([0-9.eE+-]+)", s).group(1)) for s in titles]
+    wt = dg.whiteness_test(est.residuals, est.method)
+    assert ps == pytest.approx([float(f"{p:.3g}") for p in wt.p_value], rel=1e-12)
+    assert white.statistic == pytest.approx(min(wt.p_value), rel=1e-12)
+    plt.close(fig)
+
+
+# -- sampling, record length, excitation -------------------------------------------------
+def test_coarse_sampling_of_a_fast_spiral_fails():
+    # |Im lambda| h = 2.6 of pi: under 2.5 samples per period
+    w = 1.0
+    A = [[-0.05, w], [-w, -0.05]]
+    t = np.arange(200) * 2.6
+    f = _fit(_linear(A, [3.0, 0.0], t, pct=2.0, seed=12), quiet=True)
+    d = _by_name(f)["sampling"]
+    assert d.verdict == "fail"
+    assert "aliasing" in d.advice
+
+
+def test_short_record_of_a_slow_node_warns():
+    # eigenvalues -0.1 and -2 recorded for 3 time units: 0.3 slow time constants
+    A = [[-0.1, 0.0], [0.0, -2.0]]
+    t = np.linspace(0.0, 3.0, 200)
+    f = _fit(_linear(A, [2.0, 2.0], t, pct=1.0, seed=13), quiet=True)
+    d = _by_name(f)["record_length"]
+    assert d.verdict in ("warn", "fail")
+    assert d.statistic < 1.0
+
+
+def test_trajectory_started_on_an_eigenvector_fails_excitation():
+    # A = P diag(-0.3, -1.2) P^-1 started on the slow eigenvector: a straight line
+    P = np.array([[1.0, 1.0], [0.5, -1.0]])
+    A = P @ np.diag([-0.3, -1.2]) @ np.linalg.inv(P)
+    t = np.linspace(0.0, 10.0, 200)
+    f = _fit(_linear(A, 3.0 * P[:, 0], t, pct=1.0, seed=14), quiet=True)
+    d = _by_name(f)["excitation"]
+    assert d.verdict == "fail"
+    assert "eigen direction" in d.advice
+    assert "Verdict          not reliable" in f.summary()
+
+
+# -- identifiability ------------------------------------------------------------------------
+def test_constant_channel_is_refused_with_its_name():
+    t = np.linspace(0.0, 20.0, 200)
+    x1 = 2.0 * np.exp(-0.3 * t) * np.cos(t)
+    with pytest.raises(EstimationError, match="column 'x2' is constant"):
+        _fit((t, np.column_stack([x1, np.full(200, 3.0)])), quiet=True)
+
+
+def test_all_zero_data_are_refused():
+    t = np.linspace(0.0, 20.0, 200)
+    with pytest.raises(EstimationError, match="is constant"):
+        _fit((t, np.zeros((200, 2))), quiet=True)
+
+
+def test_constant_channel_fails_identifiability_when_checked_directly(good_fit):
+    rec = good_fit.recording.with_values(
+        np.column_stack([good_fit.recording.values[:, 0], np.ones(good_fit.recording.n_samples)])
+    )
+    d = {x.name: x for x in dg.check(rec, good_fit.estimate)}
+    assert d["identifiability"].verdict == "fail"
+    assert d["excitation"].verdict == "fail"
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_exactly_singular_system_is_never_a_confident_generic_class(seed):
+    # A = [[-1, 0], [0, 0]]: a line of equilibria; three trajectories, sensor noise
+    A = np.array([[-1.0, 0.0], [0.0, 0.0]])
+    t = np.linspace(0.0, 20.0, 200)
+    rng = np.random.default_rng(seed)
+    runs = []
+    for k in range(3):
+        X = _ivp(lambda _t, y: A @ y, rng.normal(0.0, 2.0, 2), t)
+        runs.append(_noisy(X, 2.0, 100 * seed + k))
+    import pandas as pd
+
+    frame = pd.concat(
+        [pd.DataFrame({"t": t, "a": X[:, 0], "b": X[:, 1], "run": k}) for k, X in enumerate(runs)]
+    )
+    f = _fit(frame, time="t", channels=["a", "b"], trajectory="run", quiet=True)
+    assert f.label == "non-isolated equilibria" or (
+        "cannot exclude non-isolated equilibria" in f.verdict.headline()
+    )
+    assert "non-isolated" in f.summary().split("Eigenvalues")[0]
+    d = _by_name(f)["identifiability"]
+    assert d.verdict != "pass"
+
+
+def test_determinant_far_from_zero_passes_identifiability(good_fit):
+    d = _by_name(good_fit)["identifiability"]
+    assert d.verdict == "pass"
+    assert d.statistic > dg.THRESHOLDS["identifiability"][0]
+
+
+# -- agreement -----------------------------------------------------------------------------
+def test_agreement_fails_when_the_chosen_estimate_is_off(good_fit):
+    est = good_fit.estimate
+    d = {x.name: x for x in dg.check(good_fit.recording, est)}["agreement"]
+    assert d.verdict == "pass"
+    off = replace(est, matrix=est.matrix * 1.5)
+    d = {x.name: x for x in dg.check(good_fit.recording, off)}["agreement"]
+    assert d.verdict == "fail"
+    assert "disagree" in d.advice
+
+
+# -- outputs --------------------------------------------------------------------------------
+def test_unreliable_reason_reads_dicts_and_objects():
+    ok = dg.Diagnostic("sampling", 0.1, 1.0, "pass", "")
+    bad = dg.Diagnostic("record_length", 0.01, 0.1, "fail", "")
+    assert dg.unreliable_reason([ok]) is None
+    assert dg.unreliable_reason([]) is None
+    r = dg.unreliable_reason([ok, bad])
+    assert r == "the record is too short for the slowest mode (record_length)"
+    assert dg.unreliable_reason([ok.to_dict(), bad.to_dict()]) == r
+
+
+def test_report_has_a_checks_table_and_no_confident_card(pendulum_fit):
+    from fitdyn.report import render_html
+
+    page = render_html(pendulum_fit, [], [])
+    assert 'id="checks"' in page
+    assert 'id="unreliable"' in page
+    assert page.count("<tr class=") >= len(dg.NAMES)
+    assert 'class="cell stable"' not in page and 'class="cell unstable"' not in page
+
+
+def test_cli_window_option(tmp_path, capsys):
+    from fitdyn.cli import main
+
+    t = np.linspace(0.0, 30.0, 301)
+    _, X = _pendulum(2.5, t, seed=15)
+    path = tmp_path / "swing.csv"
+    rows = ["time,angle,rate"] + [f"{a},{b},{c}" for a, (b, c) in zip(t, X, strict=True)]
+    path.write_text("\n".join(rows) + "\n")
+    assert main(["fit", str(path), "--window", "time:20:"]) == 0
+    out = capsys.readouterr().out
+    assert "101 samples" in out
+    assert main(["fit", str(path), "--window", "sideways"]) == 2
+    err = capsys.readouterr().err
+    assert "window must be" in err and len(err.strip().splitlines()) == 1
+
+
+def test_a_flagged_outlier_is_not_read_as_curvature():
+    # a linear node (solve_ivp) with one 5 K spike, which the importer flags and keeps
+    A = [[-0.35, 0.30], [0.15, -0.20]]
+    t = np.linspace(0.0, 60.0, 240)
+    data_t, X = _linear(A, [8.0, 3.0], t, pct=1.0, seed=16)
+    X = X.copy()
+    X[120, 0] += 5.0
+    f = _fit((data_t, X), quiet=True)
+    assert f.recording.outlier.sum() >= 1
+    assert _by_name(f)["nonlinearity"].verdict == "pass"
+
+
+def test_demo_recordings_of_linear_systems_pass_nonlinearity():
+    # the demo files are simulated from linear models (data_demo/README.md)
+    from pathlib import Path
+
+    demo = Path(__file__).resolve().parent.parent / "data_demo"
+    for name in ("chamber_cooling.csv", "torsion_rig.csv", "reactor_runaway.csv"):
+        f = _fit(demo / name, quiet=True)
+        assert _by_name(f)["nonlinearity"].verdict == "pass", name
+
+
+def test_notebook_view_says_not_reliable_first(pendulum_fit, good_fit):
+    page = pendulum_fit._repr_html_()
+    assert page.index("not reliable") < page.index("matrix A")
+    assert "not reliable" not in good_fit._repr_html_()
