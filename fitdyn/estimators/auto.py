@@ -186,7 +186,15 @@ def _make(method: str, settings: dict[str, Any]) -> tuple[Estimator, list[str]]:
         "integral": (),
         "discrete": ("jitter_tolerance",),
         "instrumental": ("jitter_tolerance", "lags"),
-        "trajectory": ("start", "weights", "noise_sd", "frequencies", "max_nfev", "tol"),
+        "trajectory": (
+            "start",
+            "weights",
+            "noise_sd",
+            "frequencies",
+            "max_iterations",
+            "xtol",
+            "time_budget",
+        ),
         "prediction": ("weighting", "frequencies", "max_iterations", "xtol"),
         "nonlinear-iv": ("noise", "frequencies", "max_iterations", "xtol"),
     }[method]
