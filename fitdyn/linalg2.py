@@ -587,8 +587,23 @@ def expm_parts(X: np.ndarray) -> tuple[np.ndarray, ...]:
         small = np.abs(q) < 1e-2
         neg = (q < 0) & ~small
         pos = (q >= 0) & ~small
-        # neither branch: NaN stays NaN
-        other = ~(small | neg | pos)
+        other = ~(small | neg | pos)  # NaN: neither branch
+        # one branch for nearly every element (the usual case: the sign of q is that
+        # of the matrix, whatever the time factor; only times near zero fall in the
+        # series branch): that branch on everything, the few others by indexing
+        if not np.any(pos) or not np.any(neg):
+            if np.any(neg):
+                r = np.sqrt(-q)
+                es = np.exp(s)
+                co, si = np.cos(r), np.sin(r)
+                f0, f1, g = es * co, es * si / r, es * (si - r * co) / (2.0 * r**3)
+            else:
+                r = np.sqrt(q)
+                ep = np.exp(s + r)
+                em = np.exp(s - r)
+                f0, f1 = 0.5 * (ep + em), 0.5 * (ep - em) / r
+                g = ((r - 1.0) * ep + (r + 1.0) * em) / (4.0 * r**3)
+            neg = pos = np.zeros(q.shape, dtype=bool)
         f0[other] = f1[other] = g[other] = np.nan
         if np.any(small):
             qs, es = q[small], np.exp(s[small])

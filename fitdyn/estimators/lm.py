@@ -72,6 +72,10 @@ class Solution:
     iterations : int ndarray, shape (B,)
     status : int ndarray, shape (B,)
         Key of :data:`STATUS` (0 for the converged rows).
+    residuals : ndarray, shape (B, m)
+        Final residuals, flattened.
+    aux : ndarray, shape (B, ...), or None
+        What ``evaluate`` returned as its third value at the final parameters.
     """
 
     theta: np.ndarray
@@ -79,6 +83,8 @@ class Solution:
     converged: np.ndarray
     iterations: np.ndarray
     status: np.ndarray
+    residuals: np.ndarray
+    aux: np.ndarray | None = None
 
     @property
     def n_failed(self) -> int:
@@ -118,7 +124,7 @@ def solve_spd(lhs: np.ndarray, rhs: np.ndarray) -> np.ndarray:
 def levenberg_marquardt(
     theta0: np.ndarray,
     prob: Any,
-    evaluate: Callable[[np.ndarray, Any, bool], tuple[np.ndarray, np.ndarray | None]],
+    evaluate: Callable[[np.ndarray, Any, bool], tuple],
     scale: np.ndarray,
     max_iter: int = 100,
     xtol: float = 1e-10,
@@ -138,7 +144,9 @@ def levenberg_marquardt(
     evaluate : callable
         ``evaluate(theta, prob, jacobian)`` returns the residuals ``e`` of shape
         (B, ...) and, when ``jacobian`` is true, ``de / dtheta`` of shape
-        (B, ..., P) (else ``None``).
+        (B, ..., P) (else ``None``); optionally a third value, any per-row array
+        (B, ...) carried along with the accepted parameters and returned as
+        :attr:`Solution.aux` (e.g. parameters eliminated by variable projection).
     scale : ndarray, shape (B,)
         Size of a cost that counts as exact zero, times 1e28 (e.g. the sum of
         squares of the data).
@@ -164,7 +172,9 @@ def levenberg_marquardt(
     t_end = None if time_budget is None else time.perf_counter() + float(time_budget)
     theta = np.array(theta0, dtype=float)
     B, P = theta.shape
-    e, J = evaluate(theta, prob, True)
+    out = evaluate(theta, prob, True)
+    e, J = out[0], out[1]
+    aux = np.array(out[2]) if len(out) > 2 else None
     assert J is not None
     Jf = np.array(J.reshape(B, -1, P))
     ef = np.array(e.reshape(B, -1))
@@ -219,7 +229,8 @@ def levenberg_marquardt(
         delta = np.where(ok_step[:, None], delta, 0.0)
         tiny = np.max(np.abs(delta), axis=1) <= xtol * size
         trial = theta[act] + np.where(zone[:, None], gn, delta)
-        e_new, J_new = evaluate(trial, prob.take(act), True)
+        out = evaluate(trial, prob.take(act), True)
+        e_new, J_new = out[0], out[1]
         assert J_new is not None
         J_new = J_new.reshape(act.size, -1, P)
         e_new = e_new.reshape(act.size, -1)
@@ -232,6 +243,8 @@ def levenberg_marquardt(
         cost[idx] = c_new[accept]
         Jf[idx] = J_new[accept]
         ef[idx] = e_new[accept]
+        if aux is not None:
+            aux[idx] = out[2][accept]
         # Nielsen's damping update from the gain ratio (actual / predicted decrease)
         with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
             pred_d = -np.einsum("bp,bp->b", delta, 2.0 * grad + np.einsum("bpq,bq->bp", JtJ, delta))
@@ -247,4 +260,12 @@ def levenberg_marquardt(
         failed[act] = runaway
         status[act[runaway]] = 3
     status[converged] = 0
-    return Solution(theta=theta, cost=cost, converged=converged, iterations=iters, status=status)
+    return Solution(
+        theta=theta,
+        cost=cost,
+        converged=converged,
+        iterations=iters,
+        status=status,
+        residuals=ef,
+        aux=aux,
+    )

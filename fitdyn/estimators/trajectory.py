@@ -91,15 +91,16 @@ __all__ = ["TrajectoryEstimator"]
 _SINGULAR = 1e-3  # |det A| <= this * max|lambda|^2 (internal units): parameterise by b
 _PROJECTION_LIMIT = 2_000_000  # largest (values x linear parameters) for the start projection
 _REWEIGHT_ROUNDS = 8  # at most this many weighted fits while the weights settle
-_REWEIGHT_CHANGE = 1e-5  # relative weight change at which the weights have settled
+_REWEIGHT_CHANGE = 1e-4  # relative weight change at which the weights have settled
 #: relative precision of the cost at which a fit has converged (the parameters are then
 #: within about sqrt(2 n * _FTOL) standard errors of the minimum: 3e-4 for 200 samples)
 _FTOL = 1e-10
 #: predicted relative decrease below which a fit that no step improves has converged
 #: (the residuals of a fast diverging trajectory lose digits to its growth)
 _STALL = 1e-7
-#: memory budget (bytes) of one batched chunk
-_CHUNK_BYTES = 64 * 2**20
+#: memory budget (bytes) of one batched chunk (about 100 replicates of 200 samples: small
+#: enough for the (replicates x samples) arrays to stay in cache, fastest in our runs)
+_CHUNK_BYTES = 16 * 2**20
 
 
 @dataclass
@@ -233,6 +234,50 @@ def _exponentials(a: np.ndarray, bt: _Batch) -> tuple[np.ndarray, np.ndarray, np
     return X, F, G
 
 
+def _expm_directions(
+    X: np.ndarray,
+    tau: np.ndarray,
+    d: np.ndarray,
+    Fd: np.ndarray,
+    parts: tuple[np.ndarray, ...],
+) -> np.ndarray:
+    """``L(X, tau E_c) d`` for the four unit directions: :func:`_unit_directions` for the
+    exponential, with its terms shared.
+
+    With ``f0_s = f0``, ``f0_q = f1 / 2``, ``f1_s = f1`` and ``f1_q = g`` the
+    derivative in direction ``tau E_c`` applied to ``d`` is ``tau / 2 F d + tau h K
+    + f1 dM d`` (diagonal directions) or ``tau x_ji K + f1 dM d`` (off-diagonal
+    ones) with ``K = f1 / 2 d + g M d``; ``Fd`` is ``expm(X) d``.  ``parts`` is
+    ``(h, f1, g)``.
+
+    Returns
+    -------
+    ndarray, shape (B, n, 2, 4)
+    """
+    h, f1, g = parts
+    t = np.broadcast_to(tau, h.shape)
+    x01, x10 = X[..., 0, 1], X[..., 1, 0]
+    d0, d1 = d[..., 0], d[..., 1]
+    tK0 = t * (0.5 * f1 * d0 + g * (h * d0 + x01 * d1))
+    tK1 = t * (0.5 * f1 * d1 + g * (x10 * d0 - h * d1))
+    hF0 = 0.5 * t * Fd[..., 0]
+    hF1 = 0.5 * t * Fd[..., 1]
+    htK0 = h * tK0
+    htK1 = h * tK1
+    fd0 = 0.5 * f1 * t * d0
+    fd1 = 0.5 * f1 * t * d1
+    out = np.empty((*h.shape, 2, 4))
+    out[..., 0, 0] = hF0 + htK0 + fd0
+    out[..., 1, 0] = hF1 + htK1 - fd1
+    out[..., 0, 3] = hF0 - htK0 - fd0
+    out[..., 1, 3] = hF1 - htK1 + fd1
+    out[..., 0, 1] = x10 * tK0 + 2.0 * fd1
+    out[..., 1, 1] = x10 * tK1
+    out[..., 0, 2] = x01 * tK0
+    out[..., 1, 2] = x01 * tK1 + 2.0 * fd0
+    return out
+
+
 def _model_batch(theta: np.ndarray, bt: _Batch, jacobian: bool, xfg: tuple | None = None):
     """Model values (B, n, 2) and, optionally, their Jacobian (B, n, 2, P)."""
     B = theta.shape[0]
@@ -300,10 +345,14 @@ def _linear_design(
     B, n = F.shape[:2]
     R = bt.n_traj
     L = 2 * R + (0 if bt.kind == "known" else 2)
-    M = np.zeros((B, n, 2, L))
-    rows = np.arange(n)
-    M[:, rows, :, 2 * bt.traj] = np.swapaxes(F[..., 0], 0, 1)
-    M[:, rows, :, 2 * bt.traj + 1] = np.swapaxes(F[..., 1], 0, 1)
+    if R == 1:
+        M = np.empty((B, n, 2, L))
+        M[..., :2] = F
+    else:
+        M = np.zeros((B, n, 2, L))
+        rows = np.arange(n)
+        M[:, rows, :, 2 * bt.traj] = np.swapaxes(F[..., 0], 0, 1)
+        M[:, rows, :, 2 * bt.traj + 1] = np.swapaxes(F[..., 1], 0, 1)
     y = bt.y
     with np.errstate(over="ignore", invalid="ignore"):
         if bt.kind == "offset":
@@ -320,72 +369,78 @@ def _linear_design(
 class _LeastSquares:
     """Batched least squares with one design ``M`` (B, m, L) and many right-hand sides.
 
-    Normal equations of the unit-norm columns (with a rounding-level ridge),
-    inverted once per design; rows whose design is not finite give NaN.
+    Normal equations, equilibrated by the column norms (the diagonal of ``M'M``) and
+    with a rounding-level ridge, inverted once per design; rows whose design is not
+    finite give NaN.
     """
 
     def __init__(self, M: np.ndarray) -> None:
+        L = M.shape[-1]
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-            cs = np.sqrt(np.sum(M * M, axis=1))  # (B, L)
+            N = np.einsum("bmi,bmj->bij", M, M, optimize=True)
+            cs = np.sqrt(np.diagonal(N, axis1=1, axis2=2))  # column norms (B, L)
             cs = np.where(np.isfinite(cs) & (cs > 0), cs, 1.0)
-            Ms = M / cs[:, None, :]
-            N = np.swapaxes(Ms, 1, 2) @ Ms + 1e-13 * np.eye(M.shape[-1])
-        bad = ~np.all(np.isfinite(N), axis=(1, 2))
-        N[bad] = np.eye(N.shape[-1])
+            outer = cs[:, :, None] * cs[:, None, :]
+            Ns = N / outer + 1e-13 * np.eye(L)
+        bad = ~np.all(np.isfinite(Ns), axis=(1, 2))
+        Ns[bad] = np.eye(L)
         try:
-            Ninv = np.linalg.inv(N)
+            Ninv = np.linalg.inv(Ns)
         except np.linalg.LinAlgError:
-            Ninv = np.stack([np.linalg.pinv(Nb) for Nb in N])
+            Ninv = np.stack([np.linalg.pinv(Nb) for Nb in Ns])
         Ninv[bad] = np.nan
-        self.M, self.Ms, self.cs, self.Ninv = M, Ms, cs, Ninv
+        self.M, self.Ninv = M, Ninv / outer
 
-    def _scaled(self, rhs: np.ndarray, refine: bool = True) -> tuple[np.ndarray, np.ndarray]:
-        """Coefficients of the unit-norm columns and the residual, with one step of
-        iterative refinement (the corrected semi-normal equations: close to the
-        accuracy of a QR solve for the ill-conditioned designs of diverging
-        trajectories, at a fraction of its cost; Bjorck, *Numerical Methods for Least
-        Squares Problems*, 1996, sec. 2.9)."""
-        MsT = np.swapaxes(self.Ms, 1, 2)
+    def solve(self, rhs: np.ndarray, refine: bool = True) -> tuple[np.ndarray, np.ndarray]:
+        """Coefficients (B, L, k) and residuals (B, m, k) for right-hand sides (B, m, k).
+
+        ``refine`` adds one step of iterative refinement (the corrected semi-normal
+        equations: close to the accuracy of a QR solve for the ill-conditioned
+        designs of diverging trajectories, at a fraction of its cost; Bjorck,
+        *Numerical Methods for Least Squares Problems*, 1996, sec. 2.9).
+        """
+        M, Ninv = self.M, self.Ninv
+        MT = np.swapaxes(M, 1, 2)
         with np.errstate(over="ignore", invalid="ignore"):
-            c = self.Ninv @ (MsT @ rhs)
-            r = rhs - self.Ms @ c
-            if not refine:
-                return c, r
-            dc = self.Ninv @ (MsT @ r)
-            return c + dc, r - self.Ms @ dc
-
-    def coef(self, rhs: np.ndarray) -> np.ndarray:
-        """Coefficients (B, L, k) for right-hand sides (B, m, k)."""
-        return self._scaled(rhs)[0] / self.cs[:, :, None]
-
-    def residual(self, rhs: np.ndarray, refine: bool = True) -> np.ndarray:
-        """``rhs`` minus its projection on the columns of ``M``."""
-        return self._scaled(rhs, refine)[1]
+            c = Ninv @ (MT @ rhs)
+            r = rhs - M @ c
+            if refine:
+                dc = Ninv @ (MT @ r)
+                c = c + dc
+                r = r - M @ dc
+        return c, r
 
 
 def _projected(a: np.ndarray, bt: _Batch, jacobian: bool):
     """Full parameters and, optionally, the variable-projection residuals and Jacobian.
 
-    Returns ``theta`` (B, P), ``e`` (B, 2 n) and ``Jr`` (B, 2 n, 4) (the last two
-    ``None`` unless ``jacobian``).
+    Returns ``theta`` (B, P), the weighted residuals ``e`` (B, 2 n) and ``Jr`` (B, 2 n,
+    4) (``None`` unless ``jacobian``).
     """
     B = a.shape[0]
     R = bt.n_traj
     X = a.reshape(B, 2, 2)[:, None] * bt.tau[None, :, None, None]
     with np.errstate(over="ignore", under="ignore", invalid="ignore"):
         s, h, q, f0, f1, g = linalg2.expm_parts(X)
-        Mx = X - s[..., None, None] * np.eye(2)
-        F = f0[..., None, None] * np.eye(2) + f1[..., None, None] * Mx
+        x01, x10 = X[..., 0, 1], X[..., 1, 0]
+        F = np.empty(X.shape)  # f0 I + f1 M, M = [[h, x12], [x21, -h]]
+        F[..., 0, 0] = f0 + f1 * h
+        F[..., 0, 1] = f1 * x01
+        F[..., 1, 0] = f1 * x10
+        F[..., 1, 1] = f0 - f1 * h
         G = None
         if bt.kind == "offset":
             _, h2, _, pa, pc, pa_s, pa_q, pc_s, pc_q = linalg2.phi1_parts(X)
-            G = (pa[..., None, None] * np.eye(2) + pc[..., None, None] * Mx) * bt.tau[
-                None, :, None, None
-            ]
+            t = bt.tau[None, :]
+            G = np.empty(X.shape)  # tau (pa I + pc M)
+            G[..., 0, 0] = t * (pa + pc * h)
+            G[..., 0, 1] = t * pc * x01
+            G[..., 1, 0] = t * pc * x10
+            G[..., 1, 1] = t * (pa - pc * h)
     M, yw = _linear_design(F, G, bt)
     ls = _LeastSquares(M)
-    c, r = ls._scaled(yw[..., None])
-    lin = c[..., 0] / ls.cs
+    c, r = ls.solve(yw[..., None])
+    lin = c[..., 0]
     if bt.kind == "offset":
         x0 = lin[:, : 2 * R]
         d = None
@@ -393,22 +448,23 @@ def _projected(a: np.ndarray, bt: _Batch, jacobian: bool):
         v = np.broadcast_to(bt.eq, (B, 2)) if bt.kind == "known" else lin[:, 2 * R :]
         u = lin[:, : 2 * R].reshape(B, R, 2)
         x0 = (u + v[:, None, :]).reshape(B, 2 * R)
-        d = u[:, bt.traj]  # x0_r - x* on every sample
+        d = u if R == 1 else u[:, bt.traj]  # x0_r - x* on every sample (broadcast)
     theta = np.concatenate([a, lin[:, 2 * R :], x0], axis=1)
+    e = r[..., 0]
     if not jacobian:
-        return theta, None, None
+        return theta, e, None
     with np.errstate(over="ignore", under="ignore", invalid="ignore"):
-        e = r[..., 0]
         if d is None:
-            d = x0.reshape(B, R, 2)[:, bt.traj]
-        JA = _unit_directions(X, bt.tau, d, (h, f0, 0.5 * f1, f1, f1, g))
+            d = x0.reshape(B, R, 2)
+            d = d if R == 1 else d[:, bt.traj]
+        JA = _expm_directions(X, bt.tau, d, _mv(F, d), (h, f1, g))
         if bt.kind == "offset":
-            bb = np.broadcast_to(lin[:, None, 2 * R :], d.shape)
+            bb = lin[:, None, 2 * R :]
             JA += bt.tau[None, :, None, None] * _unit_directions(
                 X, bt.tau, bb, (h2, pa_s, pa_q, pc, pc_s, pc_q)
             )
         JA *= -bt.w[:, None, :, None]
-        Jr = ls.residual(JA.reshape(B, -1, 4), refine=False)
+        Jr = ls.solve(JA.reshape(B, -1, 4), refine=False)[1]
     return theta, e, Jr
 
 
@@ -428,8 +484,8 @@ def _evaluate_projected(a: np.ndarray, bt: _Batch, jacobian: bool):
     (four parameters) is far better conditioned than the full one, whose starting
     states and equilibrium are nearly collinear for diverging trajectories.
     """
-    _, e, Jr = _projected(a, bt, True)
-    return e, Jr
+    theta, e, Jr = _projected(a, bt, True)
+    return e, Jr, theta
 
 
 def _model(theta: np.ndarray, prob: _Problem, kind: str) -> np.ndarray:
@@ -741,7 +797,8 @@ class TrajectoryEstimator(NonlinearEstimator):
             time_budget=budget.left(),
             stall_tol=_STALL,
         )
-        sol.theta = _expand(sol.theta, bt)
+        assert sol.aux is not None
+        sol.theta = sol.aux  # the full parameters of the final point
         return sol
 
     def _fit_batch(
@@ -772,10 +829,15 @@ class TrajectoryEstimator(NonlinearEstimator):
         estimated = np.zeros(B, dtype=bool)
         fitted = np.zeros(B, dtype=bool)
 
+        n = bt.tau.size
+        resid = np.full((B, n, 2), np.nan)  # unweighted residuals at theta
+
         def run(rows: np.ndarray) -> None:
             if rows.size == 0:
                 return
             sol = self._lm(theta[rows], replace(bt, y=bt.y[rows], w=w[rows]), budget)
+            with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+                resid[rows] = sol.residuals.reshape(rows.size, n, 2) / w[rows][:, None, :]
             theta[rows] = sol.theta
             cost[rows] = sol.cost
             conv[rows] = sol.converged
@@ -784,16 +846,19 @@ class TrajectoryEstimator(NonlinearEstimator):
             fitted[rows] = True
 
         if how == "estimated":
-            n = bt.tau.size
             dof = max(n - bt.n_par / 2.0, 1.0)
             settled = np.zeros(B, dtype=bool)
+            # the first weights from the residuals at the start, the linear
+            # parameters (starting states, x* or b) re-solved for each row
+            _, e0, _ = _projected(np.ascontiguousarray(theta[:, :4]), bt, False)
+            with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+                resid[:] = e0.reshape(B, n, 2) / bt.w[:, None, :]
             for _ in range(_REWEIGHT_ROUNDS):
                 act = np.flatnonzero(~settled)
                 if act.size == 0:
                     break
-                model, _ = _model_batch(theta[act], bt.take(act), False)
                 with np.errstate(over="ignore", invalid="ignore"):
-                    s_hat = np.sqrt(np.sum((bt.y[act] - model) ** 2, axis=1) / dof)
+                    s_hat = np.sqrt(np.sum(resid[act] ** 2, axis=1) / dof)
                     ok = np.all(np.isfinite(s_hat) & (s_hat > 1e-9), axis=1)
                     w_new = 1.0 / np.where(ok[:, None], s_hat, 1.0)
                     change = np.max(np.abs(w_new / w[act] - 1.0), axis=1)
