@@ -18,7 +18,12 @@ trajectory fit with 1,000 replicates.  Measured in the same run:
 * slowest recording: ``fitdyn.fit(rec, bootstrap=1000)`` (what ``auto`` does, its
   diagnostic output-error fit included) on the first datasets of the coverage
   benchmark's measurement-noise scenarios and of the accuracy benchmark's
-  measurement-noise rows (every class).
+  measurement-noise rows (every class);
+* auto point fits: ``fitdyn.fit(rec)`` on recordings of every condition and class of
+  the accuracy benchmark (process noise included, where the diagnostic
+  output-error fit runs and is rejected), median and slowest.
+
+Times are wall-clock and CPU seconds (CPU is the fairer figure on a shared machine).
 
 Targets (issue 12): at least 30x faster than the lmfit path; each replicate cheaper
 than one iteration of the loop; auto point fit at most 50 ms for 200 samples; no
@@ -173,6 +178,34 @@ def slowest_rows(datasets: int, replicates: int, seed: int) -> list[str]:
     return rows
 
 
+def auto_rows(per_class: int, seed: int) -> list[str]:
+    """``fitdyn.fit(rec)`` (auto, no bootstrap) on every condition of the accuracy
+    benchmark: the diagnostic output-error fit runs on all of them that do not show
+    process noise beyond doubt, including diverging saddles and unstable nodes."""
+    rows = []
+    for cond in accuracy.CONDITIONS:
+        times = []
+        worst = ("", 0.0)
+        for cls in accuracy.CLASSES:
+            for i in range(per_class):
+                rec = accuracy.make_dataset(cls, cond, seed + 1000 * i + 11)[0]
+                t0 = time.perf_counter()
+                try:
+                    fitdyn.fit(rec, quiet=True)
+                except FitdynError:
+                    pass
+                dt = time.perf_counter() - t0
+                times.append(dt)
+                if dt > worst[1]:
+                    worst = (cls, dt)
+        rows.append(
+            f"| {cond.label} | {len(times)} | {1e3 * np.median(times):.0f} | "
+            f"{1e3 * worst[1]:.0f} ({worst[0]}) |"
+        )
+        print(rows[-1], file=sys.stderr, flush=True)
+    return rows
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--quick", action="store_true", help="lmfit on 5 replicates, 3 datasets")
@@ -202,6 +235,11 @@ def main() -> None:
     print("| datasets | n | auto chose | median s | slowest s |")
     print("|---|---|---|---|---|")
     print("\n".join(slow))
+    auto = auto_rows(2 if args.quick else 4, args.seed)
+    print("\n### `fitdyn.fit(rec)` (auto, no bootstrap) on the accuracy benchmark's recordings\n")
+    print("| condition | recordings | median ms | slowest ms (class) |")
+    print("|---|---|---|---|")
+    print("\n".join(auto))
     print(f"\n(total {time.perf_counter() - t0:.0f} s)")
 
 

@@ -199,7 +199,7 @@ def levenberg_marquardt(
         iters[act] += 1
         Ja = Jf[act]
         JtJ = np.swapaxes(Ja, 1, 2) @ Ja
-        grad = np.einsum("bmp,bm->bp", Ja, ef[act])
+        grad = (np.swapaxes(Ja, 1, 2) @ ef[act][:, :, None])[..., 0]
         diag = np.diagonal(JtJ, axis1=1, axis2=2)
         Dm = np.maximum(diag, 1e-12 * np.max(diag, axis=1, keepdims=True) + 1e-300)
         # the undamped step (with a rounding-level ridge) and its predicted decrease

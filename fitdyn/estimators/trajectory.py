@@ -423,12 +423,31 @@ def _projected(a: np.ndarray, bt: _Batch, jacobian: bool):
     with np.errstate(over="ignore", under="ignore", invalid="ignore"):
         s, h, q, f0, f1, g = linalg2.expm_parts(X)
         x01, x10 = X[..., 0, 1], X[..., 1, 0]
-        F = np.empty(X.shape)  # f0 I + f1 M, M = [[h, x12], [x21, -h]]
-        F[..., 0, 0] = f0 + f1 * h
-        F[..., 0, 1] = f1 * x01
-        F[..., 1, 0] = f1 * x10
-        F[..., 1, 1] = f0 - f1 * h
+        fast = R == 1 and bt.kind != "offset"
         G = None
+        if fast:
+            # one trajectory: the weighted design straight from the coefficients
+            n = bt.tau.size
+            L = 2 if bt.kind == "known" else 4
+            w0, w1 = bt.w[:, :1], bt.w[:, 1:]
+            Mw = np.zeros((B, n, 2, L))
+            f1h = f1 * h
+            Mw[..., 0, 0] = w0 * (f0 + f1h)
+            Mw[..., 0, 1] = w0 * (f1 * x01)
+            Mw[..., 1, 0] = w1 * (f1 * x10)
+            Mw[..., 1, 1] = w1 * (f0 - f1h)
+            if L == 4:
+                Mw[..., 0, 2] = w0
+                Mw[..., 1, 3] = w1
+            y = bt.y if bt.kind != "known" else bt.y - bt.eq
+            M = Mw.reshape(B, 2 * n, L)
+            yw = (y * bt.w[:, None, :]).reshape(B, 2 * n)
+        else:
+            F = np.empty(X.shape)  # f0 I + f1 M, M = [[h, x12], [x21, -h]]
+            F[..., 0, 0] = f0 + f1 * h
+            F[..., 0, 1] = f1 * x01
+            F[..., 1, 0] = f1 * x10
+            F[..., 1, 1] = f0 - f1 * h
         if bt.kind == "offset":
             _, h2, _, pa, pc, pa_s, pa_q, pc_s, pc_q = linalg2.phi1_parts(X)
             t = bt.tau[None, :]
@@ -437,7 +456,8 @@ def _projected(a: np.ndarray, bt: _Batch, jacobian: bool):
             G[..., 0, 1] = t * pc * x01
             G[..., 1, 0] = t * pc * x10
             G[..., 1, 1] = t * (pa - pc * h)
-    M, yw = _linear_design(F, G, bt)
+    if not fast:
+        M, yw = _linear_design(F, G, bt)
     ls = _LeastSquares(M)
     c, r = ls.solve(yw[..., None])
     lin = c[..., 0]
@@ -457,7 +477,14 @@ def _projected(a: np.ndarray, bt: _Batch, jacobian: bool):
         if d is None:
             d = x0.reshape(B, R, 2)
             d = d if R == 1 else d[:, bt.traj]
-        JA = _expm_directions(X, bt.tau, d, _mv(F, d), (h, f1, g))
+        if fast:
+            d0, d1 = d[..., 0], d[..., 1]
+            Fd = np.stack(
+                [f0 * d0 + f1 * (h * d0 + x01 * d1), f0 * d1 + f1 * (x10 * d0 - h * d1)], axis=-1
+            )
+        else:
+            Fd = _mv(F, d)
+        JA = _expm_directions(X, bt.tau, d, Fd, (h, f1, g))
         if bt.kind == "offset":
             bb = lin[:, None, 2 * R :]
             JA += bt.tau[None, :, None, None] * _unit_directions(
