@@ -32,9 +32,10 @@ is returned as not valid and counted by the bootstrap as a failed fit, never red
 (``extra["did_not_converge"]`` and :attr:`TrajectoryEstimator.last_failures` give the
 counts).
 
-lmfit no longer solves anything here: a loop of lmfit fits, one replicate at a
-time, was 30 to 100 times slower than the batched solve and could not share its
-work across replicates.  It stays for one thing, the text of the point fit's
+lmfit no longer solves anything here: the loop of lmfit fits it replaced, one
+replicate at a time, was 35 to 50 times slower than the batched solve on 1,000
+bootstrap replicates of a 200-sample recording (``benchmarks/trajectory_speed.py``)
+and could not share its work across replicates.  It stays for one thing, the text of the point fit's
 parameter report (``extra["lmfit_report"]``: values, standard errors and
 correlations in its familiar layout), which costs about a millisecond per point fit.
 
