@@ -197,7 +197,7 @@ def levenberg_marquardt(
             status[act] = 2
             break
         iters[act] += 1
-        Ja = Jf[act]
+        Ja = Jf if act.size == B else Jf[act]  # no copy while every row iterates
         JtJ = np.swapaxes(Ja, 1, 2) @ Ja
         grad = (np.swapaxes(Ja, 1, 2) @ ef[act][:, :, None])[..., 0]
         diag = np.diagonal(JtJ, axis1=1, axis2=2)
