@@ -14,7 +14,7 @@ trajectory fit with 1,000 replicates.  Measured in the same run:
 * loop: a per-replicate loop of ``numpy.linalg.lstsq`` (the one-step regression),
   ``scipy.linalg.logm`` and ``numpy.linalg.eigvals`` on pre-simulated replicates,
   timed on a few hundred and scaled to 1,000;
-* auto point fit: ``fitdyn.fit(rec)`` (no bootstrap), median of five;
+* auto point fit: ``fitdyn.fit(rec)`` (no bootstrap), CPU time, median of five;
 * slowest recording: ``fitdyn.fit(rec, bootstrap=1000)`` (what ``auto`` does, its
   diagnostic output-error fit included) on the first datasets of the coverage
   benchmark's measurement-noise scenarios and of the accuracy benchmark's
@@ -99,9 +99,9 @@ def speed_rows(replicates: int, old_reps: int, loop_reps: int, seed: int) -> lis
         fitdyn.fit(rec, quiet=True)
         times = []
         for _ in range(5):
-            t0 = time.perf_counter()
+            c0 = time.process_time()
             f = fitdyn.fit(rec, quiet=True)
-            times.append(time.perf_counter() - t0)
+            times.append(time.process_time() - c0)
         auto_ms = 1e3 * float(np.median(times))
         # batched
         new = TrajectoryEstimator()
@@ -159,20 +159,23 @@ def slowest_rows(datasets: int, replicates: int, seed: int) -> list[str]:
             recs.append(accuracy.make_dataset(cls, cond, 1000 * i + 7)[0])
         groups.append((f"accuracy '{cond.label}'", recs))
     for label, recs in groups:
-        times = []
+        times, cpu = [], []
         chosen: dict[str, int] = {}
         for j, rec in enumerate(recs):
             t0 = time.perf_counter()
+            c0 = time.process_time()
             try:
                 f = fitdyn.fit(rec, bootstrap=replicates, seed=seed + j, quiet=True)
                 name = f.estimate.method
             except FitdynError:
                 name = "failed"
             times.append(time.perf_counter() - t0)
+            cpu.append(time.process_time() - c0)
             chosen[name] = chosen.get(name, 0) + 1
         how = ", ".join(f"{k} {v}" for k, v in sorted(chosen.items()))
         rows.append(
-            f"| {label} | {len(recs)} | {how} | {np.median(times):.2f} | {max(times):.2f} |"
+            f"| {label} | {len(recs)} | {how} | {np.median(times):.2f} / {np.median(cpu):.2f} "
+            f"| {max(times):.2f} / {max(cpu):.2f} |"
         )
         print(rows[-1], file=sys.stderr, flush=True)
     return rows
@@ -189,12 +192,12 @@ def auto_rows(per_class: int, seed: int) -> list[str]:
         for cls in accuracy.CLASSES:
             for i in range(per_class):
                 rec = accuracy.make_dataset(cls, cond, seed + 1000 * i + 11)[0]
-                t0 = time.perf_counter()
+                c0 = time.process_time()
                 try:
                     fitdyn.fit(rec, quiet=True)
                 except FitdynError:
                     pass
-                dt = time.perf_counter() - t0
+                dt = time.process_time() - c0
                 times.append(dt)
                 if dt > worst[1]:
                     worst = (cls, dt)
@@ -224,7 +227,7 @@ def main() -> None:
         "recording, 3 % measurement noise\n"
     )
     print(
-        "| recording (auto chose) | auto point fit ms | batched s, wall / CPU | peak MB | "
+        "| recording (auto chose) | auto point fit CPU ms | batched s, wall / CPU | peak MB | "
         f"failed | lmfit path s, wall / CPU (from {old_reps}) | speed-up (CPU) | loop s, "
         f"wall / CPU (from {args.loop_replicates}) | CPU ms per replicate: batched / loop |"
     )
@@ -232,12 +235,12 @@ def main() -> None:
     print("\n".join(rows))
     slow = slowest_rows(datasets, args.replicates, args.seed)
     print(f"\n### `fitdyn.fit(rec, bootstrap={args.replicates})` per recording\n")
-    print("| datasets | n | auto chose | median s | slowest s |")
+    print("| datasets | n | auto chose | median s, wall / CPU | slowest s, wall / CPU |")
     print("|---|---|---|---|---|")
     print("\n".join(slow))
     auto = auto_rows(2 if args.quick else 4, args.seed)
     print("\n### `fitdyn.fit(rec)` (auto, no bootstrap) on the accuracy benchmark's recordings\n")
-    print("| condition | recordings | median ms | slowest ms (class) |")
+    print("| condition | recordings | median CPU ms | slowest CPU ms (class) |")
     print("|---|---|---|---|")
     print("\n".join(auto))
     print(f"\n(total {time.perf_counter() - t0:.0f} s)")
