@@ -53,10 +53,15 @@ Details
 * Starting values come from the integral estimator (its fitted segment starting
   states give ``x0_r``); for oscillatory starts (complex eigenvalues) extra starts
   scale the frequency ``|Im lambda|`` by ``frequencies``, because the output-error
-  cost has local minima at other frequencies.  For each start's ``A`` the linear
-  parameters (starting states and ``x*`` or ``b``) are first set by linear least
-  squares (variable projection; Golub & Pereyra, *SIAM J. Numer. Anal.* 10, 1973);
-  then all starts are refined together and the lowest cost wins.
+  cost has local minima at other frequencies.  All starts are refined together
+  and the lowest cost wins.
+* The solve is by variable projection (Golub & Pereyra, *SIAM J. Numer. Anal.* 10,
+  1973): for each ``A`` the starting states and ``x*`` (or ``b``) are solved by
+  linear least squares inside the residual, so Levenberg-Marquardt iterates on the
+  four entries of ``A`` only (Kaufman's Jacobian); the reduced problem converges in
+  a few iterations where the full one crawls along the valley of nearly collinear
+  starting states and equilibrium of a diverging trajectory.  The linear design
+  is dense in the trajectories (its size grows as samples x trajectories).
 * When the starting ``A`` is (nearly) singular the equilibrium is not defined, so
   the model is parameterised by ``b`` (``x(t) = expm(A tau) x0 + int_0^tau expm(A s)
   ds b``, the integral by :func:`fitdyn.linalg2.expm_integral`) instead of ``x*``.
@@ -90,7 +95,6 @@ from fitdyn.recording import Recording
 __all__ = ["TrajectoryEstimator"]
 
 _SINGULAR = 1e-3  # |det A| <= this * max|lambda|^2 (internal units): parameterise by b
-_PROJECTION_LIMIT = 2_000_000  # largest (values x linear parameters) for the start projection
 _REWEIGHT_ROUNDS = 8  # at most this many weighted fits while the weights settle
 _REWEIGHT_CHANGE = 1e-4  # relative weight change at which the weights have settled
 #: relative precision of the cost at which a fit has converged (the parameters are then
@@ -522,44 +526,6 @@ def _model(theta: np.ndarray, prob: _Problem, kind: str) -> np.ndarray:
     return _model_batch(theta[None], bt, False)[0][0]
 
 
-def _linear_part(A: np.ndarray, prob: _Problem, kind: str) -> tuple[np.ndarray, np.ndarray]:
-    """For a given ``A`` the model is linear in the other parameters: ``y0 + M p``.
-
-    Returns ``y0`` (n, 2) and ``M`` (n, 2, P) with ``p = (x0_1, ..., x0_R[, v])``
-    where ``v`` is ``x*`` (kind ``"equilibrium"``) or ``b`` (kind ``"offset"``).
-    """
-    n = prob.tau.size
-    R = prob.n_traj
-    with np.errstate(over="ignore", invalid="ignore", under="ignore"):
-        E = linalg2.expm(A, prob.tau)
-        G = linalg2.expm_integral(A, prob.tau) if kind == "offset" else np.eye(2) - E
-    P = 2 * R + (0 if kind == "known" else 2)
-    M = np.zeros((n, 2, P))
-    rows = np.arange(n)
-    for k in range(2):
-        M[rows, :, 2 * prob.traj + k] = E[:, :, k]
-    y0 = np.zeros((n, 2))
-    if kind == "known":
-        y0 = np.einsum("nij,j->ni", G, prob.eq)
-    else:
-        M[:, :, 2 * R :] = G
-    return y0, M
-
-
-def _project(a: np.ndarray, prob: _Problem, kind: str, w: np.ndarray) -> np.ndarray | None:
-    """Variable projection: the full parameter vector with the best linear parameters
-    for ``A`` (``a`` its four entries), or None when the model is not finite there."""
-    A = a.reshape(2, 2)
-    y0, M = _linear_part(A, prob, kind)
-    Mw = (M * w[None, :, None]).reshape(-1, M.shape[-1])
-    yw = ((prob.y - y0) * w).ravel()
-    if not (np.all(np.isfinite(Mw)) and np.all(np.isfinite(yw))):
-        return None
-    lin, *_ = np.linalg.lstsq(Mw, yw, rcond=None)
-    R = prob.n_traj
-    return np.concatenate([a, lin[2 * R :], lin[: 2 * R]])
-
-
 def _singular(A: np.ndarray) -> bool:
     rho = float(np.max(np.abs(linalg2.eigvals(A))))
     return rho == 0 or abs(float(np.linalg.det(A))) <= _SINGULAR * rho**2
@@ -922,19 +888,13 @@ class TrajectoryEstimator(NonlinearEstimator):
         w: np.ndarray,
         budget: _Budget,
     ) -> tuple[np.ndarray, str, list[dict[str, Any]], int]:
-        """Best start: each start's linear parameters projected, then all refined together.
+        """Best start: every start one row of one batched solve, the lowest cost wins.
 
-        For fixed ``A`` the model is linear in the starting states and ``x*`` (or
-        ``b``), so those are first set by linear least squares (too large problems
-        skip this and use the start as it is); then every start is one row of one
-        batched solve with the stage-one weights and the lowest cost wins.
+        The solve works by variable projection (:func:`_evaluate_projected`): for
+        each ``A`` the starting states and ``x*`` (or ``b``) are solved by linear
+        least squares inside the residual, so a start needs only its ``A``.
         """
-        n_lin = 2 * prob.n_traj + (0 if kind == "known" else 2)
-        project = 2 * prob.tau.size * n_lin <= _PROJECTION_LIMIT
-        theta0 = []
-        for _, th in starts:
-            p = _project(th[:4], prob, kind, w) if project else None
-            theta0.append(th if p is None else p)
+        theta0 = [th for _, th in starts]
         S = len(starts)
         bt = _batch(prob, kind, np.broadcast_to(prob.y, (S, *prob.y.shape)), w)
         sol = self._lm(np.array(theta0), bt, budget)
