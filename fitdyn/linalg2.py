@@ -30,6 +30,9 @@ __all__ = [
     "sort_eigenvalues",
     "phi1",
     "expm_integral",
+    "phi1_parts",
+    "phi1_frechet",
+    "expm_parts",
 ]
 
 _SMALL = 1e-4  # below this |x| the series branches are used (error ~ x^4 / 45)
@@ -444,3 +447,181 @@ def expm_integral(A: np.ndarray, t: np.ndarray | float = 1.0) -> np.ndarray:
     """
     t_arr = np.asarray(t, dtype=float)
     return phi1(A, t_arr) * (t_arr[..., None, None] if t_arr.ndim else float(t_arr))
+
+
+def phi1_parts(X: np.ndarray) -> tuple[np.ndarray, ...]:
+    """``phi1(X) = a I + c M`` and the partial derivatives of ``a`` and ``c``.
+
+    With ``X = s I + M`` and ``M^2 = q I``, the coefficients ``a`` and ``c`` of
+    :func:`phi1` depend on ``s`` and ``q`` only.  They are computed by the same
+    Taylor polynomial and doublings as :func:`phi1`, differentiated step by step
+    (forward-mode differentiation of the recurrences), so their derivatives keep
+    the accuracy of :func:`phi1` for repeated, zero and complex eigenvalues.
+
+    Parameters
+    ----------
+    X : ndarray, shape (..., 2, 2)
+
+    Returns
+    -------
+    s, h, q, a, c, a_s, a_q, c_s, c_q : ndarray, shape (...)
+        ``s = tr X / 2``, ``h = (x11 - x22) / 2``, ``q = h^2 + x12 x21``, the
+        coefficients and their derivatives with respect to ``s`` and ``q``.
+    """
+    X = np.asarray(X, dtype=float)
+    s, q, _ = _split(X)
+    h = 0.5 * (X[..., 0, 0] - X[..., 1, 1])
+    with np.errstate(over="ignore", invalid="ignore"):
+        nu = np.abs(s) + np.sqrt(np.abs(q))
+        k = np.where(
+            np.isfinite(nu) & (nu > 0.5), np.ceil(np.log2(np.where(nu > 0.5, nu, 1.0) / 0.5)), 0
+        ).astype(int)
+        scale = np.ldexp(1.0, -k)
+        ss = s * scale
+        qq = q * scale * scale
+        dss = scale  # d ss / d s
+        dqq = scale * scale  # d qq / d q
+        fact = [1.0]
+        for j in range(1, _PHI_TAYLOR + 2):
+            fact.append(fact[-1] * j)
+        shape = np.shape(s)
+        a = np.full(shape, 1.0 / fact[_PHI_TAYLOR + 1])
+        c = np.zeros(shape)
+        a_s, a_q, c_s, c_q = (np.zeros(shape) for _ in range(4))
+        for j in range(_PHI_TAYLOR - 1, -1, -1):
+            a_s, a_q, c_s, c_q = (
+                a_s * ss + a * dss + qq * c_s,
+                a_q * ss + dqq * c + qq * c_q,
+                a_s + c_s * ss + c * dss,
+                a_q + c_q * ss,
+            )
+            a, c = a * ss + qq * c + 1.0 / fact[j + 1], a + c * ss
+        for level in range(int(k.max()) if k.size else 0):
+            todo = level < k
+            ea = 1.0 + ss * a + qq * c
+            ea_s = dss * a + ss * a_s + qq * c_s
+            ea_q = ss * a_q + dqq * c + qq * c_q
+            ec = a + ss * c
+            ec_s = a_s + dss * c + ss * c_s
+            ec_q = a_q + ss * c_q
+            na = 0.5 * ((1.0 + ea) * a + qq * ec * c)
+            na_s = 0.5 * (ea_s * a + (1.0 + ea) * a_s + qq * (ec_s * c + ec * c_s))
+            na_q = 0.5 * (ea_q * a + (1.0 + ea) * a_q + dqq * ec * c + qq * (ec_q * c + ec * c_q))
+            nc = 0.5 * ((1.0 + ea) * c + ec * a)
+            nc_s = 0.5 * (ea_s * c + (1.0 + ea) * c_s + ec_s * a + ec * a_s)
+            nc_q = 0.5 * (ea_q * c + (1.0 + ea) * c_q + ec_q * a + ec * a_q)
+            a = np.where(todo, na, a)
+            a_s = np.where(todo, na_s, a_s)
+            a_q = np.where(todo, na_q, a_q)
+            c = np.where(todo, 0.5 * nc, c)
+            c_s = np.where(todo, 0.5 * nc_s, c_s)
+            c_q = np.where(todo, 0.5 * nc_q, c_q)
+            ss = np.where(todo, 2.0 * ss, ss)
+            qq = np.where(todo, 4.0 * qq, qq)
+            dss = np.where(todo, 2.0 * dss, dss)
+            dqq = np.where(todo, 4.0 * dqq, dqq)
+    return s, h, q, a, c, a_s, a_q, c_s, c_q
+
+
+def phi1_frechet(X: np.ndarray, E: np.ndarray) -> np.ndarray:
+    """Frechet derivative of :func:`phi1` of 2x2 matrices: ``d/de phi1(X + e E)`` at 0.
+
+    Parameters
+    ----------
+    X : ndarray, shape (..., 2, 2)
+    E : ndarray, broadcastable against ``X``
+        The direction.
+
+    Returns
+    -------
+    ndarray, the broadcast shape of ``X`` and ``E``
+
+    Notes
+    -----
+    ``phi1(X) = a I + c M`` with ``a``, ``c`` functions of ``s`` and ``q``
+    (:func:`phi1_parts`), so the derivative is ``(a_s ds + a_q dq) I + (c_s ds +
+    c_q dq) M + c dM`` with ``ds = tr E / 2``, ``dM = E - ds I`` and ``dq = 2 h dh +
+    x12 e21 + x21 e12``.
+    """
+    X = np.asarray(X, dtype=float)
+    E = np.asarray(E, dtype=float)
+    s, h, _, _, c, a_s, a_q, c_s, c_q = phi1_parts(X)
+    ds = 0.5 * (E[..., 0, 0] + E[..., 1, 1])
+    dh = 0.5 * (E[..., 0, 0] - E[..., 1, 1])
+    dq = 2.0 * h * dh + X[..., 0, 1] * E[..., 1, 0] + X[..., 1, 0] * E[..., 0, 1]
+    alpha = a_s * ds + a_q * dq
+    beta = c_s * ds + c_q * dq
+    M = X - s[..., None, None] * np.eye(2)
+    dM = E - ds[..., None, None] * np.eye(2)
+    return alpha[..., None, None] * np.eye(2) + beta[..., None, None] * M + c[..., None, None] * dM
+
+
+def expm_parts(X: np.ndarray) -> tuple[np.ndarray, ...]:
+    """``expm(X) = f0 I + f1 M`` and ``g = d f1 / d q``, each branch computed only where used.
+
+    The same quantities as the closed form behind
+    :func:`fitdyn.estimators.prediction.frechet_expm` (``X = s I + M``, ``M^2 = q I``,
+    ``f0 = e^s cosh r``, ``f1 = e^s sinh(r) / r``, ``g = e^s (r cosh r - sinh r) /
+    (2 r^3)``, ``r = sqrt q``, trigonometric for ``q < 0``), but each element pays
+    only for its own branch (two transcendental functions instead of a dozen),
+    which matters for the output-error fit's (replicates x samples) batches.
+
+    Parameters
+    ----------
+    X : ndarray, shape (..., 2, 2)
+
+    Returns
+    -------
+    s, h, q, f0, f1, g : ndarray, shape (...)
+        ``s = tr X / 2``, ``h = (x11 - x22) / 2``, ``q = h^2 + x12 x21``.
+    """
+    X = np.asarray(X, dtype=float)
+    a, b, c, d = _parts(X)
+    s = 0.5 * (a + d)
+    h = 0.5 * (a - d)
+    q = h * h + b * c
+    f0 = np.empty_like(s)
+    f1 = np.empty_like(s)
+    g = np.empty_like(s)
+    with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
+        small = np.abs(q) < 1e-2
+        neg = (q < 0) & ~small
+        pos = (q >= 0) & ~small
+        other = ~(small | neg | pos)  # NaN: neither branch
+        # one branch for nearly every element (the usual case: the sign of q is that
+        # of the matrix, whatever the time factor; only times near zero fall in the
+        # series branch): that branch on everything, the few others by indexing
+        if not np.any(pos) or not np.any(neg):
+            if np.any(neg):
+                r = np.sqrt(-q)
+                es = np.exp(s)
+                co, si = np.cos(r), np.sin(r)
+                f0, f1, g = es * co, es * si / r, es * (si - r * co) / (2.0 * r**3)
+            else:
+                r = np.sqrt(q)
+                ep = np.exp(s + r)
+                em = np.exp(s - r)
+                f0, f1 = 0.5 * (ep + em), 0.5 * (ep - em) / r
+                g = ((r - 1.0) * ep + (r + 1.0) * em) / (4.0 * r**3)
+            neg = pos = np.zeros(q.shape, dtype=bool)
+        f0[other] = f1[other] = g[other] = np.nan
+        if np.any(small):
+            qs, es = q[small], np.exp(s[small])
+            f0[small] = es * (1.0 + qs / 2.0 + qs * qs / 24.0 + qs**3 / 720.0 + qs**4 / 40320.0)
+            f1[small] = es * (1.0 + qs / 6.0 + qs * qs / 120.0 + qs**3 / 5040.0 + qs**4 / 362880.0)
+            g[small] = es * (1.0 / 6.0 + qs / 60.0 + qs * qs / 1680.0 + qs**3 / 90720.0)
+        if np.any(neg):
+            r = np.sqrt(-q[neg])
+            es = np.exp(s[neg])
+            co, si = np.cos(r), np.sin(r)
+            f0[neg] = es * co
+            f1[neg] = es * si / r
+            g[neg] = es * (si - r * co) / (2.0 * r**3)
+        if np.any(pos):
+            r = np.sqrt(q[pos])
+            ep = np.exp(s[pos] + r)
+            em = np.exp(s[pos] - r)
+            f0[pos] = 0.5 * (ep + em)
+            f1[pos] = 0.5 * (ep - em) / r
+            g[pos] = ((r - 1.0) * ep + (r + 1.0) * em) / (4.0 * r**3)
+    return s, h, q, f0, f1, g

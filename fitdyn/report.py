@@ -457,7 +457,9 @@ def _estimator_sentence(fit: Any, refs: list[str]) -> str:
             "The solution x(t) = x* + exp(A (t − t0)) (x0 − x*) of the model was fitted to "
             "the measured states by nonlinear least squares (an output-error fit; Ljung, "
             "1999), with A and x* shared by all trajectories and one initial state per "
-            "trajectory, using the lmfit package on SciPy's least-squares solver."
+            "trajectory, by a batched Levenberg–Marquardt solver with closed-form "
+            "derivatives of the 2×2 matrix exponential (the initial states and the "
+            "equilibrium solved linearly at each step: variable projection)."
         )
     else:
         text = f"The system matrix was estimated with the '{m}' estimator."

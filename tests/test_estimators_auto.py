@@ -251,3 +251,21 @@ def test_lag1_t_statistic():
     # products never pair rows across segments
     seg2 = np.arange(4000) % 2  # every neighbour in another segment: no pairs
     assert np.isnan(lag1_t(ma, seg2))
+
+
+def test_diagnostic_fit_over_its_budget_is_not_used():
+    rec = fitdyn.simulate(A, X_STAR, [4.0, 1.0], T, measurement_noise=0.1, seed=1)
+    est, _ = choose_and_fit(rec, diagnostic_seconds=1e-9)
+    assert est.method != "trajectory"
+    assert any("did not converge" in n for n in auto_notes(est))
+
+
+def test_kept_trajectory_fit_bootstraps_with_the_users_budget():
+    rec = fitdyn.simulate(A, X_STAR, [4.0, 1.0], T, measurement_noise=0.1, seed=1)
+    est, estimator = choose_and_fit(rec)
+    assert est.method == "trajectory"
+    assert estimator.settings["time_budget"] == est.settings["time_budget"] == 30.0
+    # the returned estimator refits replicates from the diagnostic point estimate
+    V = rec.values[None] + 0.05 * np.random.default_rng(0).standard_normal((4, *rec.values.shape))
+    assert estimator.fit_values(rec, V).valid.all()
+    assert estimator._reference is not None

@@ -1,4 +1,8 @@
-"""Output-error trajectory fit: exactness, covariance, weights, starts, edge cases."""
+"""Output-error trajectory fit: exactness, covariance, weights, starts, edge cases.
+
+Outside references: scipy.integrate.solve_ivp (data from a general ODE solver) and
+scipy.optimize.least_squares (the same weighted problem solved by MINPACK).
+"""
 
 from __future__ import annotations
 
@@ -6,9 +10,12 @@ from dataclasses import replace
 
 import numpy as np
 import pytest
+from scipy.integrate import solve_ivp
+from scipy.optimize import least_squares
 
 import fitdyn
 from fitdyn.errors import EstimationError
+from fitdyn.estimators import trajectory as tr
 from fitdyn.estimators.trajectory import TrajectoryEstimator
 
 A_SPIRAL = np.array([[-0.3, 1.2], [-1.0, -0.2]])
@@ -74,7 +81,7 @@ def test_frequency_starts_for_oscillatory_data():
     rec = spiral(noise=0.1, seed=3)
     est = TrajectoryEstimator().fit(rec)
     assert len(est.extra["starts"]) == 5
-    assert est.extra["nfev"] > 0
+    assert est.extra["iterations"] > 0
     single = TrajectoryEstimator(frequencies=()).fit(rec)
     assert len(single.extra["starts"]) == 1
     assert np.allclose(single.matrix, est.matrix, atol=1e-6)
@@ -151,3 +158,154 @@ def test_not_a_regression():
 def test_invalid_settings(settings):
     with pytest.raises(EstimationError):
         TrajectoryEstimator(**settings)
+
+
+# -- the batched solver --------------------------------------------------------------------
+
+
+def _solve_ivp_recording(A, xs, x0, t, noise, seed):
+    """Samples of dx/dt = A (x - x*) from scipy.integrate.solve_ivp (a general ODE
+    solver, not fitdyn's simulator), plus Gaussian measurement noise."""
+    sol = solve_ivp(lambda _, x: A @ (x - xs), (t[0], t[-1]), x0, t_eval=t, rtol=1e-11, atol=1e-12)
+    rng = np.random.default_rng(seed)
+    X = sol.y.T + noise * rng.standard_normal(sol.y.T.shape)
+    return fitdyn.read((t, X))
+
+
+def _batch_problem(kind, seed=0, R=1):
+    rng = np.random.default_rng(seed)
+    n = 30
+    traj = np.repeat(np.arange(R), n // R)
+    tau = np.tile(np.sort(rng.uniform(0, 1, n // R)), R)
+    prob = tr._Problem(
+        tau=tau,
+        traj=traj,
+        y=rng.standard_normal((n, 2)),
+        n_traj=R,
+        mu=np.zeros(2),
+        sd=np.ones(2),
+        T=1.0,
+        eq=np.array([0.3, -0.2]) if kind == "known" else None,
+    )
+    bt = tr._batch(prob, kind, rng.standard_normal((3, n, 2)), rng.uniform(0.5, 2.0, (3, 2)))
+    P = bt.n_par
+    theta = rng.standard_normal((3, P))
+    theta[:, :4] = np.array(
+        [[-1.0, 2.0, -1.5, -0.5], [0.4, 0.3, 0.5, -0.9], [-2.0, 0.1, 0.0, -2.1]]
+    )
+    return bt, theta
+
+
+@pytest.mark.parametrize("kind", ["equilibrium", "offset", "known"])
+@pytest.mark.parametrize("R", [1, 3])
+def test_analytic_jacobian_matches_finite_differences(kind, R):
+    bt, theta = _batch_problem(kind, seed=R, R=R)
+    _, J = tr._evaluate(theta, bt, True)
+    step = 1e-6
+    for k in range(theta.shape[1]):
+        d = np.zeros_like(theta)
+        d[:, k] = step
+        fd = (tr._evaluate(theta + d, bt, False)[0] - tr._evaluate(theta - d, bt, False)[0]) / (
+            2 * step
+        )
+        np.testing.assert_allclose(J[..., k], fd, rtol=1e-6, atol=1e-7)
+
+
+@pytest.mark.parametrize("kind", ["equilibrium", "offset", "known"])
+def test_projected_jacobian_matches_finite_differences(kind):
+    """Kaufman's variable-projection Jacobian has the exact gradient J' e."""
+    bt, theta = _batch_problem(kind, seed=5)
+    a = theta[:, :4]
+    e, Jr, _ = tr._evaluate_projected(a, bt, True)
+    step = 1e-6
+    for k in range(4):
+        d = np.zeros_like(a)
+        d[:, k] = step
+        cp = np.sum(tr._evaluate_projected(a + d, bt, True)[0] ** 2, axis=1)
+        cm = np.sum(tr._evaluate_projected(a - d, bt, True)[0] ** 2, axis=1)
+        grad = 2 * np.einsum("bm,bm->b", Jr[..., k], e)
+        np.testing.assert_allclose(grad, (cp - cm) / (2 * step), rtol=1e-5, atol=1e-7)
+
+
+def test_point_fit_matches_scipy_least_squares():
+    """The batched solver's minimum is scipy.optimize.least_squares' (reference library)
+    on the same weighted output-error problem."""
+    rec = spiral(noise=0.1, seed=8)
+    est = TrajectoryEstimator(weights=(1.0, 1.0))
+    fit = est.fit(rec)
+    prob = est._problem(rec, rec.values, None)
+    w = prob.sd * np.ones(2)
+    bt = tr._batch(prob, "equilibrium", prob.y, w)
+    theta0 = est._reference["theta"] * (1 + 0.01 * np.arange(8))
+    ref = least_squares(
+        lambda th: tr._evaluate(th[None], bt, False)[0].ravel(),
+        theta0,
+        jac=lambda th: tr._evaluate(th[None], bt, True)[1][0].reshape(-1, th.size),
+        method="lm",
+        xtol=1e-14,
+        ftol=1e-14,
+        gtol=1e-14,
+    )
+    A_ref = prob.to_original_A(ref.x[:4].reshape(2, 2))
+    np.testing.assert_allclose(fit.matrix, A_ref, rtol=1e-6, atol=1e-8)
+
+
+def test_fit_on_solve_ivp_data():
+    A = np.array([[-0.4, 1.3], [-0.9, -0.1]])
+    xs = np.array([1.5, -0.5])
+    t = np.sort(np.r_[0.0, np.random.default_rng(9).uniform(0, 12, 149)])
+    rec = _solve_ivp_recording(A, xs, np.array([4.0, 2.0]), t, 0.0, 0)
+    est = TrajectoryEstimator().fit(rec)
+    # exact data up to the ODE solver's tolerance
+    np.testing.assert_allclose(est.matrix, A, atol=1e-7)
+    np.testing.assert_allclose(est.equilibrium, xs, atol=1e-7)
+    noisy = _solve_ivp_recording(A, xs, np.array([4.0, 2.0]), t, 0.05, 1)
+    fit = TrajectoryEstimator().fit(noisy)
+    err = np.abs(fit.matrix - A).max()
+    sd = np.sqrt(np.diag(fit.param_cov))[:4].max()
+    assert err < 4 * sd, (err, sd)
+
+
+def test_fit_values_batch_equals_loop_and_counts_failures():
+    rec = spiral(noise=0.1, seed=10)
+    est = TrajectoryEstimator()
+    fit = est.fit(rec)
+    rng = np.random.default_rng(11)
+    model = rec.values - fit.residuals
+    V = model[None] + 0.1 * rng.standard_normal((5, *rec.values.shape))
+    V[3] = np.nan  # a replicate that cannot be fitted
+    batch = est.fit_values(rec, V)
+    assert batch.valid.tolist() == [True, True, True, False, True]
+    assert est.last_failures["did_not_converge"] == 1
+    assert sum(est.last_failures["reasons"].values()) == 1
+    for k in (0, 4):
+        one = est.fit_values(rec, V[k : k + 1])
+        np.testing.assert_allclose(one.matrix[0], batch.matrix[k], rtol=1e-12, atol=1e-14)
+
+
+def test_iteration_cap_reports_non_convergence():
+    rec = spiral(noise=0.1, seed=12)
+    est = TrajectoryEstimator(max_iterations=1)
+    est.fit(rec)
+    rng = np.random.default_rng(13)
+    V = rec.values[None] + 0.3 * rng.standard_normal((6, *rec.values.shape))
+    out = est.fit_values(rec, V)
+    assert est.last_failures["did_not_converge"] == int(np.sum(~out.valid)) > 0
+    assert "iteration cap reached" in est.last_failures["reasons"]
+
+
+def test_diverging_saddle_is_fitted_quickly():
+    # a saddle over a span where the unstable mode grows 500-fold
+    A = np.array([[0.3, 0.4], [0.5, -0.6]])
+    t = np.linspace(0, 10, 200)
+    clean = fitdyn.simulate(A, [0.0, 0.0], [1.0, 1.0], t)
+    rec = fitdyn.simulate(
+        A, [0.0, 0.0], [1.0, 1.0], t, measurement_noise=0.03 * clean.values.std(axis=0), seed=1
+    )
+    est = TrajectoryEstimator()
+    fit = est.fit(rec)
+    assert fit.extra["success"]
+    assert fit.extra["iterations"] < 200
+    boot = est.fit_values(rec, (rec.values - fit.residuals)[None] + 0.0 * rec.values[None])
+    assert boot.valid.all()
+    np.testing.assert_allclose(boot.matrix[0], fit.matrix, atol=1e-6)

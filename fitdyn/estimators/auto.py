@@ -74,6 +74,9 @@ AUTO_SETTINGS: dict[str, Any] = {
     # one-step fits whose fastest |Re lambda| times the median step exceeds this have
     # absorbed sensor noise as a mode that decays within a step
     "fast_mode": 3.0,
+    # wall-clock seconds the diagnostic output-error fit may take (its iterations are
+    # capped too); a fit that does not converge within them is not used
+    "diagnostic_seconds": 2.0,
 }
 
 
@@ -177,8 +180,9 @@ def ljung_box_p(residuals: np.ndarray, segment: np.ndarray, lags: int = 10) -> n
     return np.where(den > 0, chi2.sf(q, L), np.nan)
 
 
-def _make(method: str, settings: dict[str, Any]) -> tuple[Estimator, list[str]]:
-    """An estimator with the user's settings that apply to it; the rest are named."""
+def _make(method: str, settings: dict[str, Any], **defaults: Any) -> tuple[Estimator, list[str]]:
+    """An estimator with the user's settings that apply to it (``defaults`` where the
+    user gave none); the rest are named."""
     from fitdyn.estimators import get_estimator
 
     allowed = {
@@ -186,13 +190,21 @@ def _make(method: str, settings: dict[str, Any]) -> tuple[Estimator, list[str]]:
         "integral": (),
         "discrete": ("jitter_tolerance",),
         "instrumental": ("jitter_tolerance", "lags"),
-        "trajectory": ("start", "weights", "noise_sd", "frequencies", "max_nfev", "tol"),
+        "trajectory": (
+            "start",
+            "weights",
+            "noise_sd",
+            "frequencies",
+            "max_iterations",
+            "xtol",
+            "time_budget",
+        ),
         "prediction": ("weighting", "frequencies", "max_iterations", "xtol"),
         "nonlinear-iv": ("noise", "frequencies", "max_iterations", "xtol"),
     }[method]
     use = {k: v for k, v in settings.items() if k in allowed}
     ignored = sorted(k for k in settings if k not in allowed)
-    return get_estimator(method, **use), ignored
+    return get_estimator(method, **{**defaults, **use}), ignored
 
 
 def _pairs(rec: Recording) -> tuple[np.ndarray, np.ndarray]:
@@ -295,25 +307,40 @@ def choose_and_fit(
         )
         process = True
     else:
-        traj, ignored_t = _make("trajectory", settings)
+        # the diagnostic fit runs with a short time budget (and its iteration caps):
+        # a diverging or misfitting record costs at most that, then counts as failed
+        diag, _ = _make("trajectory", settings, time_budget=policy["diagnostic_seconds"])
         try:
-            est_t = traj.fit(rec, eq)
+            est_t = diag.fit(rec, eq)
         except FitdynError as exc:
             reasons.append(f"auto: trajectory fit failed ({exc}); not used")
             process = True
         else:
+            converged = bool(est_t.extra.get("success", True))
             lag_t = residual_lag1(est_t.residuals, rec.segment)
             p_white = ljung_box_p(est_t.residuals, rec.segment, policy["whiteness_lags"])
             p_min = float(np.nanmin(p_white)) if np.any(np.isfinite(p_white)) else np.nan
             white_lag = not np.isfinite(lag_t) or lag_t <= policy["white_lag1"]
             white_lb = not np.isfinite(p_min) or p_min >= policy["whiteness_p"]
-            if white_lag and white_lb:
+            if not converged:
+                reasons.append(
+                    "auto: trajectory fit did not converge within its iteration cap or "
+                    f"{policy['diagnostic_seconds']:g} s; not used"
+                )
+                process = True
+            elif white_lag and white_lb:
                 reasons.append(
                     f"auto: trajectory-fit residuals close to white (lag-1 {lag_t:.2f} <= "
                     f"{policy['white_lag1']:g}, Ljung-Box p {p_min:.2g} >= "
                     f"{policy['whiteness_p']:g}) -> measurement noise dominates; the "
                     "output-error fit is its maximum-likelihood estimate"
                 )
+                # the estimator that is returned (and bootstraps) has the user's own
+                # time budget; it starts its refits from the diagnostic point estimate
+                traj, ignored_t = _make("trajectory", settings)
+                traj._reference = getattr(diag, "_reference", None)
+                budget = {"time_budget": traj.settings["time_budget"]}
+                est_t = replace(est_t, settings={**est_t.settings, **budget})
                 chosen, ignored = (est_t, traj), ignored_t
             else:
                 reasons.append(

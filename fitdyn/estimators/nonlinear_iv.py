@@ -27,8 +27,10 @@ one-to-one reparameterisation (where ``F`` has a real logarithm).
 The solve
 ---------
 The equations are solved by minimising ``|| m(theta) ||^2`` with the batched
-Levenberg-Marquardt of the prediction-error fit (:mod:`fitdyn.estimators.prediction`:
-internal units, closed-form ``expm`` and its Frechet derivative), so every
+Levenberg-Marquardt core shared with the prediction-error and output-error fits
+(:mod:`fitdyn.estimators.lm`), on the one-step errors of the prediction-error fit
+(:mod:`fitdyn.estimators.prediction`: internal units, closed-form ``expm`` and its
+Frechet derivative), so every
 replicate of the bootstrap is solved in the same batched call as the point
 estimate.  At a solution the objective is zero to rounding.  In small samples the
 equations may have no exact solution (as the uniform-step fit may have no real
@@ -70,11 +72,11 @@ from fitdyn.errors import EstimationError, FitdynError, SamplingError, TooFewSam
 from fitdyn.estimators.base import Estimate, equilibrium_from
 from fitdyn.estimators.derivative import check_equilibrium, reject_unknown
 from fitdyn.estimators.instrumental import WEAK_INSTRUMENTS, _canonical_min
+from fitdyn.estimators.lm import levenberg_marquardt
 from fitdyn.estimators.prediction import (
     ALIASING_LIMIT,
     PredictionEstimator,
     _evaluate,
-    _levenberg_marquardt,
     _Problem,
 )
 from fitdyn.noise import NoiseFit, fit_noise
@@ -302,13 +304,13 @@ class NonlinearIVEstimator(PredictionEstimator):
         Ranking: converged fits first, exact solutions before minima, then the
         smallest one-step prediction error (solutions) or moment objective (minima).
         """
-        sol = _levenberg_marquardt(
+        sol = levenberg_marquardt(
             theta0,
             prob,
+            _moments,
+            _contribution_scale(theta0, prob),
             self.settings["max_iterations"],
             self.settings["xtol"],
-            evaluate=_moments,
-            scale=_contribution_scale(theta0, prob),
         )
         solved = sol.cost <= ROOT_TOLERANCE * _contribution_scale(sol.theta, prob)
         r, _ = _evaluate(sol.theta, prob.inner, False)

@@ -37,7 +37,8 @@ weighting gives the one-step least-squares (VAR(1)) fit of the ``discrete``
 estimator mapped by the matrix logarithm, whose parameters are a one-to-one
 reparameterisation of it.
 
-The solver is Levenberg-Marquardt (Marquardt's diagonal scaling) on a leading batch
+The solver is the shared batched Levenberg-Marquardt core
+(:mod:`fitdyn.estimators.lm`, Marquardt's diagonal scaling) on a leading batch
 axis: every replicate has its own damping, convergence flag and iteration count;
 the point fit is the one-replicate case of the same code that refits bootstrap
 replicates (:meth:`PredictionEstimator.fit_values`), in chunks of bounded memory.
@@ -79,6 +80,7 @@ from fitdyn.estimators.base import (
     equilibrium_from,
 )
 from fitdyn.estimators.derivative import check_equilibrium, reject_unknown, replicate_values
+from fitdyn.estimators.lm import Solution, levenberg_marquardt
 from fitdyn.recording import Recording
 
 __all__ = ["PredictionEstimator", "frechet_expm", "step_pairs", "process_noise_moments"]
@@ -93,8 +95,6 @@ _CHUNK_BYTES = 64 * 2**20
 _BYTES_PER_PAIR = 8 * 120
 _SERIES_Q = 1e-2  # |q| below which d f1 / d q uses its series
 _NEED_PAIRS = 4
-#: predicted relative decrease below which Gauss-Newton steps are taken untested
-_ROUNDING_ZONE = 1e-12
 #: the unit matrices E_11, E_12, E_21, E_22 (directions of a11, a12, a21, a22)
 _UNIT = np.eye(4).reshape(4, 2, 2)
 
@@ -339,33 +339,6 @@ def _evaluate(
     return e, J
 
 
-def _cost(e: np.ndarray) -> np.ndarray:
-    c = np.sum(e * e, axis=(1, 2))
-    return np.where(np.isfinite(c), c, np.inf)
-
-
-@dataclass
-class _Solution:
-    theta: np.ndarray  # (B, P)
-    cost: np.ndarray  # (B,)
-    converged: np.ndarray  # (B,) bool
-    iterations: np.ndarray  # (B,) int
-
-
-def _solve_spd(lhs: np.ndarray, rhs: np.ndarray) -> np.ndarray:
-    """Batched ``lhs x = rhs`` (B, P, P), (B, P); NaN rows where singular."""
-    try:
-        return np.linalg.solve(lhs, rhs[..., None])[..., 0]
-    except np.linalg.LinAlgError:
-        out = np.full(rhs.shape, np.nan)
-        for i in range(lhs.shape[0]):  # only reached when some system is singular
-            try:
-                out[i] = np.linalg.solve(lhs[i], rhs[i])
-            except np.linalg.LinAlgError:
-                pass
-        return out
-
-
 def _levenberg_marquardt(
     theta0: np.ndarray,
     prob: Any,
@@ -374,81 +347,19 @@ def _levenberg_marquardt(
     ftol: float = 1e-20,
     evaluate: Callable[..., tuple[np.ndarray, np.ndarray | None]] | None = None,
     scale: np.ndarray | None = None,
-) -> _Solution:
-    """Batched Levenberg-Marquardt with per-replicate damping and convergence.
+) -> Solution:
+    """The shared batched core (:func:`fitdyn.estimators.lm.levenberg_marquardt`) on
+    one-step problems.
 
-    Marquardt's scaling: the damping adds ``lam * diag(J'J)``; a step that lowers
-    the cost is taken and ``lam`` shrinks, otherwise ``lam`` grows.  A replicate has
-    converged when
-
-    * the cost is at rounding level (noise-free data), or
-    * an accepted step is below ``xtol`` relative to the parameters, or
-    * the undamped Gauss-Newton step predicts a relative decrease of the cost below
-      ``ftol``, or, below ``1e-12`` (where rounding can no longer judge a step by
-      the cost, so Gauss-Newton steps are taken untested), the prediction stops
-      shrinking tenfold per step.
-
-    it fails when the damping runs away or at the iteration cap.
-
-    ``evaluate(theta, prob, jacobian)`` returns the errors (B, m, 2) and their
-    Jacobian (B, m, 2, P) (default: the weighted one-step errors of a
-    :class:`_Problem`); ``prob`` must offer ``take(idx)``.  ``scale`` (B,) is the
-    size of a cost that counts as exact zero times 1e28 (default: from the data).
+    ``evaluate`` defaults to the weighted one-step errors of a :class:`_Problem`;
+    ``scale`` (B,) is the size of a cost that counts as exact zero times 1e28
+    (default: from the data).
     """
     if evaluate is None:
         evaluate = _evaluate
-    theta = np.array(theta0, dtype=float)
-    B, P = theta.shape
-    e, J = evaluate(theta, prob, True)
-    assert J is not None
-    cost = _cost(e)
     if scale is None:
         scale = np.sum(prob.u1 * prob.u1, axis=(1, 2)) * float(np.max(prob.root)) ** 2
-    lam = np.full(B, 1e-3)
-    converged = np.zeros(B, dtype=bool)
-    failed = ~np.isfinite(cost) | ~np.all(np.isfinite(J), axis=(1, 2, 3))
-    iters = np.zeros(B, dtype=int)
-    Jf = J.reshape(B, -1, P)
-    ef = e.reshape(B, -1)
-    eye = np.eye(P)
-    prev = np.full(B, np.inf)  # previous predicted decrease
-    for _ in range(max_iter):
-        act = np.flatnonzero(~converged & ~failed)
-        if act.size == 0:
-            break
-        iters[act] += 1
-        Ja = Jf[act]
-        JtJ = np.swapaxes(Ja, 1, 2) @ Ja
-        grad = np.einsum("bmp,bm->bp", Ja, ef[act])
-        diag = np.diagonal(JtJ, axis1=1, axis2=2)
-        Dm = np.maximum(diag, 1e-12 * np.max(diag, axis=1, keepdims=True) + 1e-300)
-        # the undamped step (with a rounding-level ridge) and its predicted decrease
-        gn = -_solve_spd(JtJ + (1e-14 * Dm)[:, :, None] * eye, grad)
-        pred = -np.einsum("bp,bp->b", gn, grad)
-        zone = np.all(np.isfinite(gn), axis=1) & (pred <= _ROUNDING_ZONE * cost[act])
-        tiny_gn = np.max(np.abs(gn), axis=1) <= xtol * (np.max(np.abs(theta[act]), axis=1) + xtol)
-        done = zone & ((pred <= ftol * cost[act]) | tiny_gn | (pred > 0.1 * prev[act]))
-        prev[act] = np.where(zone, pred, np.inf)
-        flat = cost[act] <= 1e-28 * scale[act]
-        delta = -_solve_spd(JtJ + (lam[act, None] * Dm)[:, :, None] * eye, grad)
-        ok_step = np.all(np.isfinite(delta), axis=1)
-        delta = np.where(ok_step[:, None], delta, 0.0)
-        tiny = np.max(np.abs(delta), axis=1) <= xtol * (np.max(np.abs(theta[act]), axis=1) + xtol)
-        trial = theta[act] + np.where(zone[:, None], gn, delta)
-        e_new, J_new = evaluate(trial, prob.take(act), True)
-        assert J_new is not None
-        c_new = _cost(e_new)
-        finite = np.isfinite(c_new) & np.all(np.isfinite(J_new), axis=(1, 2, 3))
-        accept = finite & (zone | (ok_step & (c_new < cost[act])))
-        idx = act[accept]
-        theta[idx] = trial[accept]
-        cost[idx] = c_new[accept]
-        Jf[idx] = J_new[accept].reshape(idx.size, Jf.shape[1], P)
-        ef[idx] = e_new[accept].reshape(idx.size, ef.shape[1])
-        lam[act] = np.where(accept, np.maximum(lam[act] / 3.0, 1e-12), lam[act] * 4.0)
-        converged[act] = (done & accept) | (accept & tiny & ~zone) | flat
-        failed[act] = (lam[act] > 1e16) & ~converged[act]
-    return _Solution(theta=theta, cost=cost, converged=converged, iterations=iters)
+    return levenberg_marquardt(theta0, prob, evaluate, scale, max_iter, xtol, ftol)
 
 
 # ----------------------------------------------------------------------------------
