@@ -43,6 +43,7 @@ __all__ = [
     "write_table",
     "journal_path",
     "summary",
+    "verdict_columns",
     "SUFFIXES",
     "BACKENDS",
 ]
@@ -90,6 +91,24 @@ BASE_COLUMNS: tuple[str, ...] = (
     "label",
     "stability",
 )
+
+#: Columns of the verdict and the adequacy checks, right after the point estimate's
+#: ``label`` and ``stability`` in every table; then one ``check_<name>`` column per
+#: check (:func:`verdict_columns`).
+VERDICT_COLUMNS: tuple[str, ...] = (
+    "verdict_stability",
+    "verdict_label",
+    "verdict_candidates",
+    "not_reliable",
+    "checks_warn",
+    "checks_fail",
+)
+
+#: What the verdict columns say when no uncertainty analysis was made (bootstrap 0).
+NOT_ASSESSED = "not assessed"
+
+#: Separator of the joined verdict and check columns (labels contain no ``;``).
+LIST_SEPARATOR = "; "
 
 #: Columns added when intervals were asked for (``bootstrap > 0`` or ``asymptotic``).
 UNCERTAINTY_COLUMNS: tuple[str, ...] = (
@@ -303,6 +322,42 @@ def _pair(iv: Any) -> tuple[float, float]:
     return float(lo), float(hi)
 
 
+def verdict_columns() -> list[str]:
+    """The verdict and check columns, in table order.
+
+    :data:`VERDICT_COLUMNS`, then ``check_<name>`` for each check of
+    :data:`fitdyn.diagnostics.NAMES` (imported here, so that ``import fitdyn`` stays
+    fast).
+    """
+    from fitdyn.diagnostics import NAMES
+
+    return list(VERDICT_COLUMNS) + [f"check_{name}" for name in NAMES]
+
+
+def _verdict_row(res: Any) -> dict[str, str]:
+    """The verdict and check cells of a successful fit.
+
+    Without an uncertainty analysis (bootstrap 0 and no asymptotic intervals) the
+    verdict's stability and label are ``"not assessed"``: the point estimate's own
+    class stays in ``label`` and ``stability``, never repeated as if it were decided.
+    """
+    from fitdyn.diagnostics import NAMES
+
+    v = res.verdict
+    checks = {str(d.name): str(d.verdict) for d in res.diagnostics}
+    row = {
+        "verdict_stability": str(v.stability),
+        "verdict_label": str(v.label) if v.assessed else NOT_ASSESSED,
+        "verdict_candidates": LIST_SEPARATOR.join(v.candidates),
+        "not_reliable": LIST_SEPARATOR.join(name for name, _ in v.not_reliable),
+        "checks_warn": LIST_SEPARATOR.join(n for n, r in checks.items() if r == "warn"),
+        "checks_fail": LIST_SEPARATOR.join(n for n, r in checks.items() if r == "fail"),
+    }
+    for name in NAMES:
+        row[f"check_{name}"] = checks.get(name, "")
+    return row
+
+
 def _fit_row(res: Any) -> dict[str, Any]:
     """The table row of a successful fit (``res`` is a :class:`fitdyn.analysis.Fit`)."""
     rec = res.recording
@@ -333,6 +388,7 @@ def _fit_row(res: Any) -> dict[str, Any]:
         "eigenvalue_2_imag": float(lam[1].imag),
         "label": res.label,
         "stability": res.stability,
+        **_verdict_row(res),
         "warning_count": len(res.warnings),
         "warnings": WARNING_SEPARATOR.join(_one_line(w) for w in res.warnings),
     }
@@ -752,7 +808,7 @@ def _quiet_dask() -> None:
 # the table
 # ----------------------------------------------------------------------------------
 def _columns(uncertainty: bool, json: bool) -> list[str]:
-    cols = list(BASE_COLUMNS)
+    cols = list(BASE_COLUMNS) + verdict_columns()
     if uncertainty:
         cols += UNCERTAINTY_COLUMNS
     cols += TAIL_COLUMNS
@@ -828,6 +884,41 @@ def write_table(table: pd.DataFrame, path: str | os.PathLike[str]) -> Path:
     return write_csv_frame(path, table)
 
 
+def _counts(column: pd.Series) -> str:
+    counts = column.value_counts()
+    return ", ".join(f"{k} {v}" for k, v in sorted(counts.items(), key=lambda kv: (-kv[1], kv[0])))
+
+
+def _verdict_summary(ok: pd.DataFrame, confidence: Any) -> list[str]:
+    """Lines on the verdicts and the failed checks of the fitted rows."""
+    if "verdict_stability" not in ok:
+        return []
+    lines = []
+    stab = ok["verdict_stability"].fillna("")
+    assessed = ok[(stab != NOT_ASSESSED) & (stab != "")]
+    unassessed = int((stab == NOT_ASSESSED).sum())
+    if len(assessed):
+        level = f"{100 * float(confidence):.0f} %" if confidence is not None else "the"
+        lines.append(
+            f"verdict at the {level} level, stability: {_counts(assessed['verdict_stability'])}"
+        )
+        lines.append(f"verdict at the {level} level, class: {_counts(assessed['verdict_label'])}")
+    if unassessed:
+        lines.append(
+            f"verdict not assessed for {unassessed} of {len(ok)} (no uncertainty analysis: "
+            "bootstrap 0; the classes above are point estimates with no confidence; "
+            "rerun with --bootstrap 500 for a verdict)"
+        )
+    flagged = ok["not_reliable"].fillna("")
+    n_bad = int((flagged != "").sum())
+    if n_bad:
+        lines.append(
+            f"not reliable (an adequacy check failed) for {n_bad} of {len(ok)}; "
+            "see the 'not_reliable' and 'check_*' columns"
+        )
+    return lines
+
+
 def summary(table: pd.DataFrame, out: str | os.PathLike[str] | None = None) -> str:
     """A few lines about a results table: counts, classes, where it went, the caution.
 
@@ -857,6 +948,7 @@ def summary(table: pd.DataFrame, out: str | os.PathLike[str] | None = None) -> s
         if "p_stable" in ok:
             sure = int((ok["p_stable"] >= 0.95).sum())
             lines.append(f"P(stable) >= 0.95 for {sure} of {len(ok)}")
+        lines += _verdict_summary(ok, table.attrs.get("confidence"))
     if table.attrs.get("bootstrap") and "seed" in table.attrs:
         lines.append(
             f"master seed {table.attrs['seed']} (each file's own seed is in the 'seed' column)"
@@ -900,7 +992,9 @@ class _Journal:
     The first line records the options and the master seed; a row is reused on a
     later run only when the options, the file's path and content (SHA-256) and its
     seed are all unchanged.  Rows of internal errors (a crash, a worker that died)
-    are never reused.  A torn last line (a kill in mid-write) is ignored.
+    are never reused, nor fitted rows journaled before the verdict columns existed
+    (they are fitted again; an older error row is reused, its new columns empty).  A
+    torn last line (a kill in mid-write) is ignored.
     """
 
     VERSION = 1
@@ -970,6 +1064,8 @@ class _Journal:
         row = self.rows.get(key)
         if row is None or str(row.get("message", "")).startswith("internal error"):
             return None
+        if row.get("status") == "ok" and "verdict_stability" not in row:
+            return None  # journaled before the verdict columns: fitted again, not left blank
         if json_path is not None and row.get("status") == "ok":
             if row.get("json_file") != json_path or not os.path.isfile(json_path):
                 return None
@@ -1097,7 +1193,9 @@ def batch(
     method : str
         Estimator, as for :func:`fitdyn.fit` (default ``"auto"``).
     bootstrap : int
-        Bootstrap replicates per file (0: no intervals).
+        Bootstrap replicates per file.  The default 0 is a speed choice for many
+        files: no intervals, and the verdict columns say ``"not assessed"`` (unless
+        ``asymptotic=True``); ask for 500 or more for a verdict at ``confidence``.
     confidence : float
         Confidence level of the intervals.
     seed : int, optional
@@ -1120,7 +1218,16 @@ def batch(
         ``channel_1``, ``channel_2``, ``time_unit``, ``a11``..``a22``,
         ``equilibrium_1``, ``equilibrium_2``, ``trace``, ``determinant``,
         ``discriminant``, ``eigenvalue_k_real``/``_imag`` (k = 1, 2, sorted as in
-        :class:`fitdyn.Fit`), ``label``, ``stability``; with intervals also
+        :class:`fitdyn.Fit`), ``label``, ``stability`` (these two: the point
+        estimate, no confidence attached); the verdict at ``confidence``
+        (:attr:`fitdyn.Fit.verdict`): ``verdict_stability`` (stable, unstable,
+        undetermined, or not assessed without intervals), ``verdict_label`` (a class,
+        undetermined, or not assessed), ``verdict_candidates`` (joined by ``"; "``);
+        the adequacy checks (:attr:`fitdyn.Fit.diagnostics`): ``not_reliable``
+        (failed checks, joined by ``"; "``; empty when none), ``checks_warn``,
+        ``checks_fail`` and ``check_<name>`` (pass, warn or fail) for each name of
+        :data:`fitdyn.diagnostics.NAMES`; error rows leave all these empty; with
+        intervals also
         ``scheme``, ``failed_replicates``, ``<name>_low``/``_high`` for trace,
         determinant, max_real_part and each eigenvalue's real and imaginary part,
         ``p_stable``, ``label_probability`` (the point label's bootstrap

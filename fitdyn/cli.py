@@ -278,7 +278,11 @@ def build_parser() -> argparse.ArgumentParser:
             "Fit every recording with the same options and write one table, one row per "
             "file. A file that cannot be fitted gets status 'error' and the reason; the "
             "others go on. Each file's seed comes from --seed and its place in the "
-            "sorted list, so the table does not depend on --workers."
+            "sorted list, so the table does not depend on --workers. Columns label and "
+            "stability are the point estimate; verdict_stability, verdict_label and "
+            "verdict_candidates are the verdict at --confidence (with --bootstrap > 0 or "
+            "--asymptotic; 'not assessed' otherwise); not_reliable, checks_warn, "
+            "checks_fail and check_<name> give the adequacy checks."
         ),
     )
     p.add_argument(
@@ -293,6 +297,11 @@ def build_parser() -> argparse.ArgumentParser:
         p,
         seed_help="master seed; each file's own seed is in the table (default: none)",
         bootstrap=0,
+        bootstrap_note=(
+            "; the batch default 0 is for speed over many files: its table's "
+            "verdict_stability and verdict_label then say 'not assessed' and label/stability "
+            "are point estimates with no confidence"
+        ),
     )
     r = p.add_argument_group("running")
     r.add_argument(
@@ -324,7 +333,10 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _add_estimation_options(
-    p: argparse.ArgumentParser, seed_help: str, bootstrap: int = DEFAULT_REPLICATES
+    p: argparse.ArgumentParser,
+    seed_help: str,
+    bootstrap: int = DEFAULT_REPLICATES,
+    bootstrap_note: str = "",
 ) -> None:
     g = p.add_argument_group("estimation")
     g.add_argument(
@@ -354,7 +366,7 @@ def _add_estimation_options(
         default=bootstrap,
         metavar="B",
         help="bootstrap replicates, 0 for none (no intervals, no verdict at a confidence); "
-        "default %(default)s" + calibrated,
+        "default %(default)s" + calibrated + bootstrap_note,
     )
     g.add_argument(
         "--confidence",

@@ -12,10 +12,12 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from scipy.integrate import solve_ivp
 
 import fitdyn
 from fitdyn.batch import batch, file_seeds, find_sources, json_names, summary
 from fitdyn.cli import main
+from fitdyn.diagnostics import NAMES as CHECK_NAMES
 from fitdyn.errors import FitdynError, InputError, ReportError
 from fitdyn.simulate import write_csv
 
@@ -213,6 +215,181 @@ def test_demo_recordings_match_single_fits():
         assert row["warnings"] == " | ".join(" ".join(w.split()) for w in res.warnings)
     # the classes given in data_demo/README.md
     assert list(t["label"]) == ["stable node", "saddle", "stable spiral"]
+
+
+# ----------------------------------------------------------------------------------
+# the verdict and the adequacy checks
+# ----------------------------------------------------------------------------------
+CHECKS = [f"check_{name}" for name in CHECK_NAMES]
+VERDICT = [
+    "verdict_stability",
+    "verdict_label",
+    "verdict_candidates",
+    "not_reliable",
+    "checks_warn",
+    "checks_fail",
+]
+
+
+def _pendulum_csv(path: Path, theta0: float = 2.5) -> Path:
+    """A damped pendulum (g / L = 9.81, 1 m arm) released at theta0 rad, simulated with
+    scipy's general ODE solver, 1 % sensor noise: far from linear at 2.5 rad."""
+    t = np.linspace(0.0, 10.0, 200)
+    sol = solve_ivp(
+        lambda _t, y: [y[1], -9.81 * np.sin(y[0]) - 0.3 * y[1]],
+        (t[0], t[-1]),
+        [theta0, 0.0],
+        t_eval=t,
+        rtol=1e-10,
+        atol=1e-12,
+        method="DOP853",
+    )
+    assert sol.success
+    X = sol.y.T
+    X = X + np.random.default_rng(2).normal(0.0, 1.0, X.shape) * 0.01 * X.std(axis=0)
+    pd.DataFrame({"time": t, "angle": X[:, 0], "rate": X[:, 1]}).to_csv(path, index=False)
+    return path
+
+
+def _verdict_cells(res) -> dict[str, str]:
+    """What the verdict and check columns must hold for a fit, built from the Fit."""
+    v = res.verdict
+    by = {d.name: d.verdict for d in res.diagnostics}
+    cells = {
+        "verdict_stability": v.stability,
+        "verdict_label": v.label if v.assessed else "not assessed",
+        "verdict_candidates": "; ".join(v.candidates),
+        "not_reliable": "; ".join(n for n, _ in v.not_reliable),
+        "checks_warn": "; ".join(n for n in by if by[n] == "warn"),
+        "checks_fail": "; ".join(n for n in by if by[n] == "fail"),
+    }
+    cells.update({f"check_{n}": by[n] for n in CHECK_NAMES})
+    return cells
+
+
+def test_verdict_columns_follow_the_point_estimate_in_every_table(rigs, boot_table):
+    plain = batch(rigs, seed=11, quiet=True, **FAST)
+    for t in (plain, boot_table):
+        cols = list(t.columns)
+        at = cols.index("stability") + 1
+        assert cols[at : at + len(VERDICT) + len(CHECKS)] == VERDICT + CHECKS
+        assert cols[: cols.index("label")][:4] == ["file", "status", "message", "seed"]
+        bad = t[t["status"] == "error"]
+        assert bad[VERDICT + CHECKS].isna().all().all()  # error rows: empty cells
+
+
+def test_bootstrap_0_says_not_assessed_and_still_reports_the_checks(rigs):
+    t = batch([rigs / "rig_a.csv", rigs / "rig_b.csv"], seed=4, quiet=True, **FAST)
+    assert (t["verdict_stability"] == "not assessed").all()
+    assert (t["verdict_label"] == "not assessed").all()  # never the point class again
+    assert (t["verdict_candidates"] == "").all()
+    assert list(t["label"]) == ["stable spiral", "stable node"]  # the point estimate
+    for _, row in t.iterrows():
+        res = fitdyn.fit(row["file"], seed=int(row["seed"]), bootstrap=0, quiet=True, **FAST)
+        assert {k: row[k] for k in VERDICT + CHECKS} == _verdict_cells(res)
+        assert set(row[CHECKS]) <= {"pass", "warn", "fail"}
+    text = summary(t)
+    assert "verdict not assessed for 2 of 2" in text and "--bootstrap" in text
+
+
+def test_asymptotic_intervals_give_a_verdict_without_bootstrap(rigs):
+    t = batch([rigs / "rig_a.csv"], seed=4, asymptotic=True, quiet=True, **FAST)
+    assert t["verdict_stability"].iloc[0] in {"stable", "unstable", "undetermined"}
+    assert t["verdict_label"].iloc[0] != "not assessed"
+
+
+def test_bootstrap_decides_the_clear_cases(rigs, boot_table):
+    ok = boot_table[boot_table["status"] == "ok"].set_index(
+        boot_table.loc[boot_table["status"] == "ok", "file"].map(lambda p: Path(p).name)
+    )
+    # the true classes, by the trace-determinant rule (det > 0, trace < 0, trace^2 <
+    # 4 det: stable spiral; det < 0: saddle; common practice, no source) checked with
+    # numpy's eigenvalues of the simulated matrices
+    lam = np.linalg.eigvals(np.array(SYSTEMS["spiral"]))
+    assert (lam.real < 0).all() and (lam.imag != 0).any()
+    assert np.prod(np.linalg.eigvals(np.array(SYSTEMS["saddle"]))).real < 0
+    for name in ("rig_a.csv", "rig_d.txt"):
+        assert ok.loc[name, "verdict_stability"] == "stable"
+        assert ok.loc[name, "verdict_label"] == "stable spiral"
+        assert ok.loc[name, "verdict_candidates"].split("; ")[0] == "stable spiral"
+    assert ok.loc["rig_c.tsv", "verdict_stability"] == "unstable"
+    assert ok.loc["rig_c.tsv", "verdict_label"] == "saddle"
+    for _, row in ok.iterrows():  # the row is the single fit's verdict, cell for cell
+        res = fitdyn.fit(row["file"], bootstrap=50, seed=int(row["seed"]), quiet=True, **FAST)
+        assert {k: row[k] for k in VERDICT + CHECKS} == _verdict_cells(res)
+    text = summary(boot_table)
+    assert "verdict at the 95 % level, stability: stable 3, unstable 1" in text
+
+
+def test_a_file_that_fails_a_check_is_flagged_not_reliable(tmp_path):
+    src = _pendulum_csv(tmp_path / "swing.csv")
+    small = _pendulum_csv(tmp_path / "swing_small.csv", theta0=0.05)
+    t = batch([src, small], seed=3, bootstrap=30, quiet=True, **FAST)
+    big, calm = t.iloc[0], t.iloc[1]
+    assert big["check_nonlinearity"] == "fail"
+    assert "nonlinearity" in big["not_reliable"].split("; ")
+    assert big["checks_fail"] == big["not_reliable"]
+    assert big["label"] == "stable spiral"  # the point class alone would look fine
+    assert calm["check_nonlinearity"] == "pass"
+    res = fitdyn.fit(src, seed=int(big["seed"]), bootstrap=30, quiet=True, **FAST)
+    assert {k: big[k] for k in VERDICT + CHECKS} == _verdict_cells(res)
+    # the small swing passes nonlinearity (it may fail whiteness: the one-step fit
+    # does not model sensor noise); the summary counts every flagged file
+    flagged = int((t["not_reliable"] != "").sum())
+    assert f"not reliable (an adequacy check failed) for {flagged} of 2" in summary(t)
+    # the CSV table carries the same cells, through the spreadsheet-safe writer
+    out = tmp_path / "tables" / "res.csv"
+    batch([src, small], seed=3, bootstrap=30, out=out, quiet=True, **FAST)
+    back = pd.read_csv(out, keep_default_na=False)
+    assert list(back.columns) == list(t.columns)
+    for col in VERDICT + CHECKS:
+        assert list(back[col]) == list(t[col]), col
+
+
+def test_resume_refits_rows_journaled_before_the_verdict_columns(rigs, tmp_path, monkeypatch):
+    import fitdyn.analysis
+    from fitdyn.batch import journal_path
+
+    out = tmp_path / "res.csv"
+    first = batch(rigs, seed=11, out=out, quiet=True, **FAST)
+    jp = journal_path(out)
+    lines = jp.read_text().splitlines()
+    new = set(VERDICT + CHECKS)
+    old_style = [lines[0]]
+    for line in lines[1:]:  # an older fitdyn's rows: no verdict or check keys
+        entry = json.loads(line)
+        entry["row"] = {k: v for k, v in entry["row"].items() if k not in new}
+        old_style.append(json.dumps(entry))
+    jp.write_text("\n".join(old_style) + "\n")
+
+    real = fitdyn.analysis.fit
+    fitted: list[str] = []
+
+    def counted(data, **kw):
+        fitted.append(Path(data).name)
+        return real(data, **kw)
+
+    monkeypatch.setattr(fitdyn.analysis, "fit", counted)
+    again = batch(rigs, seed=11, out=out, quiet=True, **FAST)
+    # the fitted rows are fitted again (none left without its verdict); the error
+    # rows are reused and their new cells stay empty
+    assert sorted(fitted) == ["rig_a.csv", "rig_b.csv", "rig_c.tsv", "rig_d.txt"]
+    pd.testing.assert_frame_equal(again, first, check_exact=True)
+    assert again.loc[again["status"] == "error", VERDICT + CHECKS].isna().all().all()
+    # and the journal now holds full rows: a third run fits nothing
+    fitted.clear()
+    third = batch(rigs, seed=11, out=out, quiet=True, **FAST)
+    assert fitted == []
+    pd.testing.assert_frame_equal(third, first, check_exact=True)
+
+
+def test_a_reused_row_without_the_new_keys_fills_empty():
+    from fitdyn.batch import _columns, _table
+
+    old = {"file": "x.csv", "seed": 1, "status": "ok", "message": "", "label": "saddle"}
+    t = _table([old], _columns(False, False))
+    assert t[VERDICT + CHECKS].isna().all().all()
+    assert t["label"].iloc[0] == "saddle"
 
 
 # ----------------------------------------------------------------------------------
@@ -555,6 +732,17 @@ def test_cli_batch_with_import_options_and_quiet(rigs, tmp_path, capsys):
     assert text == "" and err == ""
     t = pd.read_csv(out)
     assert list(t["channel_1"]) == ["inflow", "inflow"]
+    # the batch default is --bootstrap 0: the table says so instead of a verdict
+    assert list(t["verdict_stability"]) == ["not assessed", "not assessed"]
+    assert list(t["verdict_label"]) == ["not assessed", "not assessed"]
+
+
+def test_cli_batch_help_says_what_bootstrap_0_means(capsys):
+    with pytest.raises(SystemExit):
+        main(["batch", "--help"])
+    text = " ".join(capsys.readouterr().out.split())
+    assert "default 0" in text and "'not assessed'" in text
+    assert "label and stability are the point estimate" in text
 
 
 @pytest.mark.parametrize(
