@@ -171,7 +171,77 @@ def build_parser() -> argparse.ArgumentParser:
     o.add_argument("--out", required=True, metavar="PATH", help="results table (.csv, or .parquet)")
     o.add_argument("--json-dir", metavar="DIR", help="also write each fit's JSON result here")
     o.add_argument("--quiet", action="store_true", help="no progress bar, no summary")
+    _add_plan_parser(sub)
     return parser
+
+
+def _add_plan_parser(sub: Any) -> None:
+    p = sub.add_parser(
+        "plan",
+        help="plan the next experiment by simulation: how long, how often, how many runs",
+        description=(
+            "Simulate candidate experiments from a fitted model (a 'fitdyn fit --json' "
+            "file) or from a given matrix and noise, fit each as 'fit' would, and report "
+            "the cheapest design that reaches the target with the required probability, "
+            "with Monte Carlo standard errors."
+        ),
+    )
+    p.add_argument("result", nargs="?", help="JSON result of 'fitdyn fit --json'")
+    p.add_argument("--data", metavar="PATH", help="the recording the result was fitted from")
+    t = p.add_argument_group("target")
+    t.add_argument(
+        "--target",
+        nargs="+",
+        default=["stability"],
+        metavar="KIND",
+        help="stability (verdict decided), class (true class at the confidence) or "
+        "width W (interval of the largest real part at most W wide; W absolute or like 20%%)",
+    )
+    t.add_argument("--probability", type=float, default=0.8, metavar="P", help="default 0.8")
+    t.add_argument("--confidence", type=float, default=0.95, metavar="C", help="default 0.95")
+    t.add_argument("--cost", choices=("samples", "time"), default="samples")
+    g = p.add_argument_group("candidate designs (default: factors of the current design)")
+    g.add_argument("--steps", metavar="H,..", help="sampling steps")
+    g.add_argument("--durations", metavar="T,..", help="durations of each run")
+    g.add_argument("--runs", metavar="R,..", help="numbers of runs")
+    g.add_argument("--amplitudes", metavar="A,..", help="initial displacement factors")
+    s = p.add_argument_group("simulation")
+    s.add_argument("--simulations", type=int, default=60, metavar="N", help="per design")
+    s.add_argument(
+        "--intervals",
+        choices=("spread", "bootstrap", "full"),
+        default="spread",
+        help="uncertainty of each simulated experiment (default spread)",
+    )
+    s.add_argument(
+        "--method",
+        default="auto",
+        choices=METHODS,
+        help="estimator of the simulated fits (default auto, chosen per design family)",
+    )
+    s.add_argument("--replicates", type=int, default=100, metavar="B", help="with bootstrap")
+    s.add_argument(
+        "--budget",
+        type=int,
+        default=60_000,
+        metavar="S",
+        help="samples the iterative fits may refit in all",
+    )
+    s.add_argument("--seed", type=int, default=None, metavar="S")
+    m = p.add_argument_group("a given model instead of a result")
+    m.add_argument("--matrix", metavar="a11,a12;a21,a22", help="write --matrix=... if negative")
+    m.add_argument("--x0", metavar="X,Y", help="initial state of the current design")
+    m.add_argument("--equilibrium", metavar="X,Y", default=None)
+    m.add_argument("--step", type=float, metavar="H", help="current sampling step")
+    m.add_argument("--duration", type=float, metavar="T", help="current run length")
+    m.add_argument("--current-runs", type=int, default=1, metavar="R")
+    m.add_argument("--process-noise", type=float, default=None, metavar="Q")
+    m.add_argument("--measurement-noise", type=float, default=None, metavar="SD")
+    o = p.add_argument_group("output")
+    o.add_argument("--table", metavar="PATH", help="write the table (.md: markdown)")
+    o.add_argument("--plot", metavar="PATH", help="write the figure (.png, .svg, .pdf)")
+    o.add_argument("--json", metavar="PATH", help="write the plan as JSON")
+    o.add_argument("--quiet", action="store_true", help="no progress bar, no summary")
 
 
 def _add_estimation_options(p: argparse.ArgumentParser, seed_help: str) -> None:
@@ -324,6 +394,79 @@ def _cmd_batch(args: argparse.Namespace) -> int:
     return 0
 
 
+def _numbers(text: str | None, what: str, kind: type = float) -> list[Any] | None:
+    if text is None:
+        return None
+    try:
+        out = [kind(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        out = []
+    if not out:
+        raise FitdynError(f"{what} must be numbers separated by commas, got '{text}'")
+    return out
+
+
+def _cmd_plan(args: argparse.Namespace) -> int:
+    from fitdyn.plan import plan
+
+    kind, *rest = args.target
+    width = None
+    if kind == "width":
+        if len(rest) != 1:
+            raise FitdynError("--target width needs one width, e.g. --target width 0.02 or 20%")
+        width = rest[0]
+    elif rest:
+        raise FitdynError(f"--target {kind} takes no value, got '{' '.join(rest)}'")
+    if (args.result is None) == (args.matrix is None):
+        raise FitdynError("give a fit result (JSON file) or --matrix with --x0, --step, --duration")
+    given: dict[str, Any] = {}
+    if args.matrix is not None:
+        if args.x0 is None or args.step is None or args.duration is None:
+            raise FitdynError("--matrix needs --x0, --step and --duration of the current design")
+        given = {
+            "matrix": _matrix(args.matrix),
+            "x0": _pair(args.x0, "--x0"),
+            "step": args.step,
+            "duration": args.duration,
+            "current_runs": args.current_runs,
+            "equilibrium": None
+            if args.equilibrium is None
+            else _pair(args.equilibrium, "--equilibrium"),
+        }
+    result = plan(
+        args.result,
+        target=kind,
+        width=width,
+        probability=args.probability,
+        confidence=args.confidence,
+        cost=args.cost,
+        simulations=args.simulations,
+        intervals=args.intervals,
+        method=args.method,
+        replicates=args.replicates,
+        budget=args.budget,
+        steps=_numbers(args.steps, "--steps"),
+        durations=_numbers(args.durations, "--durations"),
+        runs=_numbers(args.runs, "--runs", int),
+        amplitudes=_numbers(args.amplitudes, "--amplitudes"),
+        seed=args.seed,
+        data=args.data,
+        process_noise=args.process_noise,
+        measurement_noise=args.measurement_noise,
+        quiet=args.quiet or not sys.stderr.isatty(),
+        **given,
+    )
+    if not args.quiet:
+        print(result.summary())
+    if args.table:
+        result.write_table(args.table)
+    if args.plot:
+        result.plot(args.plot)
+    if args.json:
+        result.to_json(args.json)
+    return 0
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     parser = build_parser()
@@ -336,6 +479,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         "fit": _cmd_fit,
         "simulate": _cmd_simulate,
         "batch": _cmd_batch,
+        "plan": _cmd_plan,
     }[args.command]
     try:
         return handler(args)
