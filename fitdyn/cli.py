@@ -223,9 +223,9 @@ def _add_plan_parser(sub: Any) -> None:
     s.add_argument(
         "--budget",
         type=int,
-        default=60_000,
+        default=250_000,
         metavar="S",
-        help="samples the iterative fits may refit in all",
+        help="work of the iterative fits in all (samples x parameters; default 250000)",
     )
     s.add_argument("--seed", type=int, default=None, metavar="S")
     m = p.add_argument_group("a given model instead of a result")

@@ -314,8 +314,9 @@ def basis_from_fit(
             spans.append(float(t[-1] - t[0]))
     if not steps:
         raise InputError(f"{rec.source}: every run has a single sample; nothing to plan from")
-    step = float(np.median(np.concatenate(steps)))
-    duration = float(np.median(spans))
+    # ten significant digits: a grid of 2 x 0.29 s reads 0.58, not 0.5799999999999983
+    step = float(f"{float(np.median(np.concatenate(steps))):.10g}")
+    duration = float(f"{float(np.median(spans)):.10g}")
     unc = fit.uncertainty
     if unc is None:
         unc = boot.bootstrap(
@@ -1127,7 +1128,7 @@ def plan(
     amplitudes: Any = None,
     rechecks: int = 4,
     stage_size: int = 24,
-    budget: int = 60_000,
+    budget: int = 250_000,
     prune: bool = True,
     seed: Any = None,
     data: Any = None,
@@ -1182,12 +1183,12 @@ def plan(
         saves time on clear cases; the SE is reported with the actual count).
     budget : int
         Bound on the work of the iterative estimators (output-error, Kalman,
-        prediction-error, nonlinear instrumental fits) with ``intervals="spread"``:
-        at most this many samples are refitted in all (simulated experiments x their
-        samples), spent on the cheapest designs first; designs beyond it are listed
-        as not simulated.  The regression estimators cost next to nothing and are
-        not counted.  A count, not a clock, so the same seed gives the same plan on
-        any machine.
+        prediction-error, nonlinear instrumental fits) with ``intervals="spread"``,
+        in samples x fitted parameters (6, plus two initial states per run for the
+        output-error fit) summed over the simulated experiments; spent on the
+        cheapest designs first; designs beyond it are listed as not simulated.  The
+        regression estimators cost next to nothing and are not counted.  A count,
+        not a clock, so the same seed gives the same plan on any machine.
     prune : bool
         Skip the longer runs of a family (same step, runs, amplitude) once a shorter
         one clearly reaches the target: a longer run costs more under either cost,
@@ -1354,7 +1355,7 @@ def plan(
                     status = f"auto failed: {est_name}"
                     break
                 if intervals == "spread" and not est.is_regression:
-                    need = n_c * d.total_samples
+                    need = n_c * d.total_samples * _parameters(est.name, d.runs)
                     if spent + need > budget:
                         if not fitted:
                             status = BUDGET
@@ -1525,7 +1526,8 @@ def plan(
         )
     if intervals == "spread":
         notes.append(
-            f"iterative fits refitted {spent} of the budget of {int(budget)} samples"
+            f"iterative fits used {spent} of the budget of {int(budget)} "
+            "samples x parameters"
             + (f"; {over_budget} design(s) stopped early at the budget" if over_budget else "")
         )
     notes.append(
@@ -1565,6 +1567,12 @@ PRUNED = "not simulated: a shorter run of this family already reaches the target
 
 #: Level of the one-sided binomial checks that stop a design's simulation early.
 STOP_LEVEL = 0.01
+
+
+def _parameters(method: str, runs: int) -> int:
+    """Parameters an iterative fit adjusts: A and b, plus the initial states of the
+    output-error fit (its cost grows with both)."""
+    return 6 + 2 * runs if method == "trajectory" else 6
 
 
 def _decided(x: int, n: int, probability: float) -> str | None:
