@@ -21,7 +21,12 @@ Targets (``confidence`` ``c``, 0.95 by default):
 
 How each simulated experiment is fitted (``intervals``):
 
-``"spread"`` (default)
+``"auto"`` (default)
+    ``"bootstrap"`` where ``auto`` chose a regression estimator (cheap, and closest
+    to the full default: benchmarks/plan_speed.py), ``"spread"`` where it chose an
+    iterative one (output-error, Kalman, prediction-error, nonlinear instrumental
+    fits), whose bootstrap costs a full refit per replicate.
+``"spread"``
     ``auto`` picks the estimator once per design family (step x runs x amplitude) on
     one simulated experiment; that estimator then refits every simulated experiment
     of the family in one batched call (:meth:`Estimator.fit_values`).  Each
@@ -66,7 +71,7 @@ from fitdyn.errors import FitdynError, InputError
 __all__ = ["plan", "Plan", "Design", "DesignResult", "Basis", "mc_se", "TARGETS", "INTERVALS"]
 
 TARGETS = ("stability", "class", "width")
-INTERVALS = ("spread", "bootstrap", "full")
+INTERVALS = ("auto", "spread", "bootstrap", "full")
 COSTS = ("samples", "time")
 
 #: Default grid, as factors of the current design.
@@ -588,6 +593,9 @@ class DesignResult:
         Stability target: fraction decided on the wrong side.
     median_width : float
         Median interval width of the largest real part.
+    uncertainty : str
+        How each simulated experiment got its uncertainty (``"spread"``,
+        ``"bootstrap"`` or ``"full"``).
     coverage : float
         Fraction of the simulated experiments whose interval of the largest real part
         covers the true value (near ``confidence`` when the intervals are calibrated;
@@ -608,6 +616,7 @@ class DesignResult:
     wrong: float | None
     median_width: float
     coverage: float = float("nan")
+    uncertainty: str = "-"
     n_drawn: int = 0
     p_drawn: float = float("nan")
     se_drawn: float = float("nan")
@@ -630,6 +639,7 @@ class DesignResult:
             "wrong": num(self.wrong),
             "median_width": num(self.median_width),
             "coverage": num(self.coverage),
+            "uncertainty": self.uncertainty,
             "simulated_drawn": self.n_drawn,
             "p_drawn": num(self.p_drawn),
             "se_drawn": num(self.se_drawn),
@@ -755,7 +765,7 @@ class Plan:
                     f"{d.amplitude:g}",
                     str(d.total_samples),
                     f"{d.cost(self.cost):.4g}",
-                    r.estimator,
+                    r.estimator if r.uncertainty == "-" else f"{r.estimator} ({r.uncertainty})",
                     p,
                     pd,
                     "-" if not np.isfinite(r.median_width) else f"{r.median_width:.3g}",
@@ -1118,7 +1128,7 @@ def plan(
     confidence: float = 0.95,
     cost: str = "samples",
     simulations: int = 60,
-    intervals: str = "spread",
+    intervals: str = "auto",
     method: str = "auto",
     replicates: int = 100,
     draws: int = 400,
@@ -1163,7 +1173,7 @@ def plan(
     simulations : int
         Simulated experiments per design (60); the Monte Carlo SE of a probability
         near 0.8 is then about 0.05.
-    intervals : {"spread", "bootstrap", "full"}
+    intervals : {"auto", "spread", "bootstrap", "full"}
         How each simulated experiment gets its uncertainty (module notes).
     method : str
         ``"auto"`` (default: what ``fit`` does, chosen once per design family) or
@@ -1354,7 +1364,8 @@ def plan(
                 if est is None:
                     status = f"auto failed: {est_name}"
                     break
-                if intervals == "spread" and not est.is_regression:
+                mode = _mode(intervals, est)
+                if mode == "spread" and not est.is_regression:
                     need = n_c * d.total_samples * _parameters(est.name, d.runs)
                     if spent + need > budget:
                         if not fitted:
@@ -1363,7 +1374,7 @@ def plan(
                             over_budget += 1
                         break
                     spent += need
-                if intervals == "spread":
+                if mode == "spread":
                     mats, valid = _fit_batch(est, rec0, batch.values, eq)
                     fitted.append((mats, valid))
                     allm = np.concatenate([f[0] for f in fitted])
@@ -1379,7 +1390,7 @@ def plan(
                     )
                 else:
                     out = _loop_outcome(
-                        batch, est, eq, basis.matrix, intervals, replicates, confidence, rng
+                        batch, est, eq, basis.matrix, mode, replicates, confidence, rng
                     )
                     fitted.append(out)
                     p_st, p_cl, wid, cover = (
@@ -1431,6 +1442,7 @@ def plan(
                     coverage=float(np.nanmean(cover))
                     if np.any(np.isfinite(cover))
                     else float("nan"),
+                    uncertainty=mode,
                 )
             )
             if bar is not None:
@@ -1493,7 +1505,7 @@ def plan(
                     est,
                     eq,
                     systems[good],
-                    intervals,
+                    _mode(intervals, est),
                     replicates,
                     confidence,
                     draws,
@@ -1524,7 +1536,7 @@ def plan(
             f"drawn systems: {N} per re-checked design, resampled from {basis.systems_from}; "
             "the same noise, equilibrium and initial displacements as the point estimate"
         )
-    if intervals == "spread":
+    if intervals in ("auto", "spread"):
         notes.append(
             f"iterative fits used {spent} of the budget of {int(budget)} "
             "samples x parameters"
@@ -1534,11 +1546,15 @@ def plan(
         "candidate designs sample at a uniform step; auto chose the estimator once per family "
         "(step x runs x amplitude) on one simulated experiment and it refitted the rest"
     )
-    if intervals == "spread":
+    if any(r.uncertainty == "spread" for r in rows):
         notes.append(
-            f"intervals 'spread': each simulated experiment's uncertainty is N(its estimate, the "
-            f"covariance of the design's {N} simulated estimates), {draws} draws; "
-            "benchmarks/plan_speed.py compares it with the full default bootstrap"
+            "uncertainty 'spread': each simulated experiment's uncertainty is N(its estimate, "
+            f"the covariance of the design's simulated estimates), {draws} draws"
+        )
+    if any(r.uncertainty == "bootstrap" for r in rows):
+        notes.append(
+            f"uncertainty 'bootstrap': fitdyn's bootstrap with {int(replicates)} replicates on "
+            "each simulated experiment (the default is 1000)"
         )
     return Plan(
         target=target,
@@ -1567,6 +1583,16 @@ PRUNED = "not simulated: a shorter run of this family already reaches the target
 
 #: Level of the one-sided binomial checks that stop a design's simulation early.
 STOP_LEVEL = 0.01
+
+
+def _mode(intervals: str, est: Any) -> str:
+    """The uncertainty of one family's simulated experiments: ``auto`` bootstraps the
+    regression estimators (cheap, and closest to what ``fit`` does) and uses the
+    spread for the iterative ones (whose bootstrap would cost a full refit per
+    replicate)."""
+    if intervals != "auto":
+        return intervals
+    return "bootstrap" if est.is_regression else "spread"
 
 
 def _parameters(method: str, runs: int) -> int:

@@ -54,9 +54,10 @@ def test_every_probability_carries_its_binomial_se():
 
 
 def test_longer_record_is_never_predicted_worse_beyond_monte_carlo_error():
-    res = _given(durations=[5.0, 10.0, 20.0, 40.0, 80.0], prune=False, seed=7, simulations=40)
+    durations = [5.0, 10.0, 20.0, 40.0, 80.0, 160.0, 320.0]
+    res = _given(durations=durations, prune=False, seed=7, simulations=40)
     rows = sorted((r for r in res.rows if r.status == "ok"), key=lambda r: r.design.duration)
-    assert len(rows) == 5
+    assert len(rows) == len(durations)
     for a, b in zip(rows, rows[1:], strict=False):
         slack = 2.5 * math.sqrt(a.se**2 + b.se**2) + 1e-12
         assert b.p >= a.p - slack, (a.design, a.p, b.design, b.p)
@@ -65,7 +66,15 @@ def test_longer_record_is_never_predicted_worse_beyond_monte_carlo_error():
 
 
 def test_longer_record_is_not_worse_for_the_width_target():
-    res = _given(durations=[10.0, 40.0, 160.0], prune=False, seed=3, target="width", width=0.1)
+    res = _given(
+        durations=[10.0, 40.0, 160.0],
+        prune=False,
+        seed=3,
+        target="width",
+        width=0.1,
+        intervals="spread",
+    )
+    assert all(r.uncertainty == "spread" for r in res.rows)
     rows = sorted((r for r in res.rows if r.status == "ok"), key=lambda r: r.design.duration)
     widths = [r.median_width for r in rows]
     assert widths[0] > widths[1] > widths[2]
