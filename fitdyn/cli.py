@@ -209,10 +209,10 @@ def _add_plan_parser(sub: Any) -> None:
     s.add_argument("--simulations", type=int, default=60, metavar="N", help="per design")
     s.add_argument(
         "--intervals",
-        choices=("auto", "spread", "bootstrap", "full"),
-        default="auto",
-        help="uncertainty of each simulated experiment (default auto: bootstrap for the "
-        "regression estimators, spread for the iterative ones)",
+        choices=("spread", "auto", "bootstrap", "full"),
+        default="spread",
+        help="uncertainty of each simulated experiment (default spread; auto: bootstrap "
+        "for the regression estimators, spread for the iterative ones)",
     )
     s.add_argument(
         "--method",

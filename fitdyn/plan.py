@@ -21,12 +21,13 @@ Targets (``confidence`` ``c``, 0.95 by default):
 
 How each simulated experiment is fitted (``intervals``):
 
-``"auto"`` (default)
-    ``"bootstrap"`` where ``auto`` chose a regression estimator (cheap, and closest
-    to the full default: benchmarks/plan_speed.py), ``"spread"`` where it chose an
-    iterative one (output-error, Kalman, prediction-error, nonlinear instrumental
-    fits), whose bootstrap costs a full refit per replicate.
-``"spread"``
+``"auto"``
+    ``"bootstrap"`` where ``auto`` chose a regression estimator (closest to the full
+    default: benchmarks/plan_speed.py, but a loop over the experiments that took
+    90-110 s on two demo files), ``"spread"`` where it chose an iterative one
+    (output-error, Kalman, prediction-error, nonlinear instrumental fits), whose
+    bootstrap costs a full refit per replicate.
+``"spread"`` (default)
     ``auto`` picks the estimator once per design family (step x runs x amplitude) on
     one simulated experiment; that estimator then refits every simulated experiment
     of the family in one batched call (:meth:`Estimator.fit_values`).  Each
@@ -1128,7 +1129,7 @@ def plan(
     confidence: float = 0.95,
     cost: str = "samples",
     simulations: int = 60,
-    intervals: str = "auto",
+    intervals: str = "spread",
     method: str = "auto",
     replicates: int = 100,
     draws: int = 400,

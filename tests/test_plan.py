@@ -55,7 +55,9 @@ def test_every_probability_carries_its_binomial_se():
 
 def test_longer_record_is_never_predicted_worse_beyond_monte_carlo_error():
     durations = [5.0, 10.0, 20.0, 40.0, 80.0, 160.0, 320.0]
-    res = _given(durations=durations, prune=False, seed=7, simulations=40)
+    # intervals "auto": the one-step fit is a regression, so each experiment is bootstrapped
+    res = _given(durations=durations, prune=False, seed=7, simulations=40, intervals="auto")
+    assert all(r.uncertainty == "bootstrap" for r in res.rows)
     rows = sorted((r for r in res.rows if r.status == "ok"), key=lambda r: r.design.duration)
     assert len(rows) == len(durations)
     for a, b in zip(rows, rows[1:], strict=False):
