@@ -81,6 +81,9 @@ DURATION_FACTORS = (0.5, 1.0, 2.0, 4.0)
 RUN_FACTORS = (1, 2)
 AMPLITUDES = (1.0, 2.0)
 
+#: Extra simulated experiments whose estimates give a regression's spread covariance.
+COV_SIMULATIONS = 200
+
 #: Replicate count of a full bootstrap (fitdyn.bootstrap's default).
 FULL_REPLICATES = 1000
 
@@ -805,7 +808,7 @@ class Plan:
         b = self.basis
         tu = f" {b.time_unit}" if b.time_unit else ""
         lines = ["fitdyn plan -- the next experiment, by simulation"]
-        lines.append(f"  from            {b.source} ({b.method or 'given matrix'})")
+        lines.append(f"  from            {b.source}" + (f" ({b.method})" if b.method else ""))
         lines.append(
             f"  current design  step {b.step:.4g}{tu}, runs of {b.duration:.4g}{tu}, "
             f"{b.runs} run(s)"
@@ -937,25 +940,54 @@ class Plan:
         for r in self.rows:
             fams.setdefault(r.design.family, []).append(r)
         tu = self.basis.time_unit or "time units"
-        for (h, R, amp), rs in sorted(fams.items()):
-            rs = sorted(rs, key=lambda r: r.design.duration)
-            x = [r.design.duration for r in rs]
-            y = [r.p for r in rs]
-            e = [r.se for r in rs]
-            ax.errorbar(
+        nf = max(len(fams), 1)
+        for j, ((h, R, amp), rs) in enumerate(sorted(fams.items())):
+            rs = sorted(
+                (r for r in rs if r.n > 0 and np.isfinite(r.p)), key=lambda r: r.design.duration
+            )
+            if not rs:
+                continue
+            # a small horizontal offset per family keeps coinciding points visible
+            shift = 1.0 + 0.04 * (j - (nf - 1) / 2) / nf
+            x = [r.design.duration * shift for r in rs]
+            line = ax.errorbar(
                 x,
-                y,
-                yerr=e,
+                [r.p for r in rs],
+                yerr=[r.se for r in rs],
                 marker="o",
                 ms=4,
                 capsize=2,
                 lw=1.2,
                 label=f"step {h:.3g}, {R} run(s), x{amp:g}",
             )
+            drawn = [(xi, r) for xi, r in zip(x, rs, strict=True) if r.n_drawn]
+            if drawn:
+                ax.errorbar(
+                    [d[0] for d in drawn],
+                    [d[1].p_drawn for d in drawn],
+                    yerr=[d[1].se_drawn for d in drawn],
+                    marker="o",
+                    ms=7,
+                    mfc="none",
+                    ls="none",
+                    capsize=2,
+                    color=line[0].get_color(),
+                )
         if self.chosen is not None:
             c = self.rows[self.chosen]
             ax.plot(
                 [c.design.duration], [c.p], marker="*", ms=16, color="k", ls="none", label="chosen"
+            )
+        if any(r.n_drawn for r in self.rows):
+            ax.plot(
+                [],
+                [],
+                marker="o",
+                ms=7,
+                mfc="none",
+                ls="none",
+                color="0.3",
+                label="re-checked with drawn systems",
             )
         ax.axhline(self.probability, ls="--", color="0.4", lw=1)
         ax.set_xscale("log")
@@ -966,7 +998,7 @@ class Plan:
             f"target: {self.target}; {self.simulations} simulated experiments per design",
             fontsize=10,
         )
-        ax.legend(fontsize=7, loc="best", ncol=2)
+        ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
         ax.grid(alpha=0.3)
         if path is not None:
             from fitdyn.atomic import write_with
@@ -1344,8 +1376,8 @@ def plan(
                 if bar is not None:
                     bar.update(1)
                 continue
-            kids = design_seeds[k].spawn(1 + -(-N // stage))
-            draw_seed, chunk_seeds = kids[0], kids[1:]
+            kids = design_seeds[k].spawn(2 + -(-N // stage))
+            draw_seed, cov_seed, chunk_seeds = kids[0], kids[1], kids[2:]
             fitted: list[tuple[np.ndarray, ...]] = []
             cov = None
             status = "ok"
@@ -1380,15 +1412,31 @@ def plan(
                     fitted.append((mats, valid))
                     allm = np.concatenate([f[0] for f in fitted])
                     allv = np.concatenate([f[1] for f in fitted])
-                    p_st, p_cl, wid, cover, cov = _spread_outcome(
+                    if est.is_regression and cov is None:
+                        # the 4 x 4 covariance of a few dozen estimates is too noisy (its
+                        # correlations decide the largest real part's spread): a
+                        # regression refits COV_SIMULATIONS more experiments at no cost
+                        extra = _simulate_batch(
+                            basis,
+                            d,
+                            basis.matrix,
+                            COV_SIMULATIONS,
+                            np.random.default_rng(cov_seed),
+                        )
+                        em, ev = _fit_batch(est, rec0, extra.values, eq)
+                        good = em[ev].reshape(-1, 4)
+                        if good.shape[0] >= 6:
+                            cov = _trimmed_cov(good)
+                    p_st, p_cl, wid, cover, cov_used = _spread_outcome(
                         allm,
                         allv,
                         basis.matrix,
                         confidence,
                         draws,
                         np.random.default_rng(draw_seed),
-                        None,
+                        cov if est.is_regression else None,
                     )
+                    cov = cov if est.is_regression else cov_used
                 else:
                     out = _loop_outcome(
                         batch, est, eq, basis.matrix, mode, replicates, confidence, rng
