@@ -958,6 +958,8 @@ class Plan:
                 ms=4,
                 capsize=2,
                 lw=1.2,
+                color=f"C{j % 10}",
+                ls=("-", "--", ":")[(j // 10) % 3],  # ten colours, then new line styles
                 label=f"step {h:.3g}, {R} run(s), x{amp:g}",
             )
             drawn = [(xi, r) for xi, r in zip(x, rs, strict=True) if r.n_drawn]
