@@ -6,6 +6,7 @@ read      clean a two-channel recording (file, DataFrame or arrays) into a Recor
 fit       estimate the system matrix, classify the equilibrium, quantify uncertainty
 simulate  exact-discretisation simulator of dx = A (x - x*) dt + noise
 batch     fit many recordings (in parallel if asked); one results table
+plan      plan the next experiment by simulation (how long, how often, how many runs)
 """
 
 from __future__ import annotations
@@ -15,12 +16,13 @@ from typing import Any
 
 __version__ = "0.1.0"
 
-__all__ = ["read", "fit", "simulate", "batch", "Recording", "Fit", "__version__"]
+__all__ = ["read", "fit", "simulate", "batch", "plan", "Recording", "Fit", "__version__"]
 
 # These functions share their names with their modules: import them eagerly so that
 # the attributes are the functions whatever is imported later (the modules need only
 # numpy at import time).
 from fitdyn.batch import batch  # noqa: E402
+from fitdyn.plan import plan  # noqa: E402
 from fitdyn.simulate import simulate  # noqa: E402
 
 _LAZY = {

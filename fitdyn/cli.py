@@ -329,7 +329,179 @@ def build_parser() -> argparse.ArgumentParser:
         help="also write each fit's JSON result here (default: not written)",
     )
     o.add_argument("--quiet", action="store_true", help="no progress bar, no summary")
+    _add_plan_parser(sub)
     return parser
+
+
+def _add_plan_parser(sub: Any) -> None:
+    p = sub.add_parser(
+        "plan",
+        help="plan the next experiment by simulation: how long, how often, how many runs",
+        description=(
+            "Simulate candidate experiments from a fitted model (a 'fitdyn fit --json' "
+            "file) or from a given matrix and noise, fit each as 'fit' would, and report "
+            "the cheapest design that reaches the target with the required probability, "
+            "with Monte Carlo standard errors."
+        ),
+    )
+    p.add_argument(
+        "result",
+        nargs="?",
+        help="JSON result of 'fitdyn fit --json' (default: none; then --matrix and the "
+        "current design describe the model)",
+    )
+    p.add_argument(
+        "--data",
+        metavar="PATH",
+        help="the recording the result was fitted from (default: the result's source)",
+    )
+    t = p.add_argument_group("target")
+    t.add_argument(
+        "--target",
+        nargs="+",
+        default=["stability"],
+        metavar="KIND",
+        help="stability (verdict decided), class (true class at the confidence) or "
+        "width W (interval of the largest real part at most W wide, in 1/time unit; W "
+        "absolute or like 20%% of |Re lambda|) (default: %(default)s)",
+    )
+    t.add_argument(
+        "--probability",
+        type=float,
+        default=0.8,
+        metavar="P",
+        help="required probability that the experiment reaches the target (default %(default)s)",
+    )
+    t.add_argument(
+        "--confidence",
+        type=float,
+        default=0.95,
+        metavar="C",
+        help="confidence level of the verdicts and intervals (default %(default)s)",
+    )
+    t.add_argument(
+        "--cost",
+        choices=("samples", "time"),
+        default="samples",
+        help="what a design costs: samples (total samples) or time (duration x runs) "
+        "(choices: %(choices)s; default %(default)s)",
+    )
+    g = p.add_argument_group("candidate designs (default: factors of the current design)")
+    g.add_argument(
+        "--steps",
+        metavar="H,..",
+        help="sampling steps, in the time unit (default: the current step x 2, 1, 1/2)",
+    )
+    g.add_argument(
+        "--durations",
+        metavar="T,..",
+        help="durations of each run, in the time unit (default: the current x 1/2, 1, 2, 4)",
+    )
+    g.add_argument("--runs", metavar="R,..", help="numbers of runs (default: the current x 1, 2)")
+    g.add_argument(
+        "--amplitudes", metavar="A,..", help="initial displacement factors (default: 1, 2)"
+    )
+    s = p.add_argument_group("simulation")
+    s.add_argument(
+        "--simulations",
+        type=int,
+        default=60,
+        metavar="N",
+        help="simulated experiments per design, at most (default %(default)s)",
+    )
+    s.add_argument(
+        "--intervals",
+        choices=("spread", "auto", "bootstrap", "full"),
+        default="spread",
+        help="uncertainty of each simulated experiment: spread (normal approximation from "
+        "the design's simulated estimates), auto (bootstrap for the regression "
+        "estimators, spread for the iterative ones), bootstrap, or full (fit's default) "
+        "(choices: %(choices)s; default %(default)s)",
+    )
+    s.add_argument(
+        "--method",
+        default="auto",
+        choices=METHODS,
+        help="estimator of the simulated fits (choices: %(choices)s; default %(default)s, "
+        "chosen per design family)",
+    )
+    s.add_argument(
+        "--replicates",
+        type=int,
+        default=100,
+        metavar="B",
+        help="bootstrap replicates per simulated experiment (default %(default)s)",
+    )
+    s.add_argument(
+        "--budget",
+        type=int,
+        default=250_000,
+        metavar="S",
+        help="work of the iterative fits in all (samples x parameters; default 250000)",
+    )
+    s.add_argument(
+        "--seed", type=int, default=None, metavar="S", help="random seed (default: none)"
+    )
+    m = p.add_argument_group("a given model instead of a result")
+    m.add_argument(
+        "--matrix",
+        metavar="a11,a12;a21,a22",
+        help="system matrix in 1/time unit, rows separated by ';' (write --matrix=... if "
+        "an entry is negative; default: none)",
+    )
+    m.add_argument(
+        "--x0",
+        metavar="X,Y",
+        help="initial state of the current design (channel units; default: none)",
+    )
+    m.add_argument(
+        "--equilibrium",
+        metavar="X,Y",
+        default=None,
+        help="equilibrium in channel units (default: 0,0)",
+    )
+    m.add_argument(
+        "--step",
+        type=float,
+        metavar="H",
+        help="current sampling step, in the time unit (default: none)",
+    )
+    m.add_argument(
+        "--duration",
+        type=float,
+        metavar="T",
+        help="current run length, in the time unit (default: none)",
+    )
+    m.add_argument(
+        "--current-runs",
+        type=int,
+        default=1,
+        metavar="R",
+        help="runs of the current design (default %(default)s)",
+    )
+    m.add_argument(
+        "--process-noise",
+        type=float,
+        default=None,
+        metavar="Q",
+        help="process-noise intensity per channel, (channel unit)^2 per time unit (default: none)",
+    )
+    m.add_argument(
+        "--measurement-noise",
+        type=float,
+        default=None,
+        metavar="SD",
+        help="measurement-noise sd, in channel units (default: none)",
+    )
+    o = p.add_argument_group("output")
+    o.add_argument(
+        "--table", metavar="PATH", help="write the table (.md: markdown; default: not written)"
+    )
+    o.add_argument(
+        "--plot", metavar="PATH", help="write the figure (.png, .svg, .pdf; default: not written)"
+    )
+    o.add_argument("--json", metavar="PATH", help="write the plan as JSON (default: not written)")
+    o.add_argument("--quiet", action="store_true", help="no progress bar, no summary")
 
 
 def _add_estimation_options(
@@ -534,6 +706,79 @@ def _cmd_batch(args: argparse.Namespace) -> int:
     return 0
 
 
+def _numbers(text: str | None, what: str, kind: type = float) -> list[Any] | None:
+    if text is None:
+        return None
+    try:
+        out = [kind(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        out = []
+    if not out:
+        raise FitdynError(f"{what} must be numbers separated by commas, got '{text}'")
+    return out
+
+
+def _cmd_plan(args: argparse.Namespace) -> int:
+    from fitdyn.plan import plan
+
+    kind, *rest = args.target
+    width = None
+    if kind == "width":
+        if len(rest) != 1:
+            raise FitdynError("--target width needs one width, e.g. --target width 0.02 or 20%")
+        width = rest[0]
+    elif rest:
+        raise FitdynError(f"--target {kind} takes no value, got '{' '.join(rest)}'")
+    if (args.result is None) == (args.matrix is None):
+        raise FitdynError("give a fit result (JSON file) or --matrix with --x0, --step, --duration")
+    given: dict[str, Any] = {}
+    if args.matrix is not None:
+        if args.x0 is None or args.step is None or args.duration is None:
+            raise FitdynError("--matrix needs --x0, --step and --duration of the current design")
+        given = {
+            "matrix": _matrix(args.matrix),
+            "x0": _pair(args.x0, "--x0"),
+            "step": args.step,
+            "duration": args.duration,
+            "current_runs": args.current_runs,
+            "equilibrium": None
+            if args.equilibrium is None
+            else _pair(args.equilibrium, "--equilibrium"),
+        }
+    result = plan(
+        args.result,
+        target=kind,
+        width=width,
+        probability=args.probability,
+        confidence=args.confidence,
+        cost=args.cost,
+        simulations=args.simulations,
+        intervals=args.intervals,
+        method=args.method,
+        replicates=args.replicates,
+        budget=args.budget,
+        steps=_numbers(args.steps, "--steps"),
+        durations=_numbers(args.durations, "--durations"),
+        runs=_numbers(args.runs, "--runs", int),
+        amplitudes=_numbers(args.amplitudes, "--amplitudes"),
+        seed=args.seed,
+        data=args.data,
+        process_noise=args.process_noise,
+        measurement_noise=args.measurement_noise,
+        quiet=args.quiet or not sys.stderr.isatty(),
+        **given,
+    )
+    if not args.quiet:
+        print(result.summary())
+    if args.table:
+        result.write_table(args.table)
+    if args.plot:
+        result.plot(args.plot)
+    if args.json:
+        result.to_json(args.json)
+    return 0
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     parser = build_parser()
@@ -546,6 +791,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         "fit": _cmd_fit,
         "simulate": _cmd_simulate,
         "batch": _cmd_batch,
+        "plan": _cmd_plan,
     }[args.command]
     from fitdyn.safety import Terminated, check_cli_args, cli_outputs, exit_on_signals
 

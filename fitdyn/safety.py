@@ -334,6 +334,16 @@ def cli_outputs(args: Any) -> None:
             input_folders=folders,
             folders=("--json-dir",),
         )
+    elif cmd == "plan":
+        inputs = [x for x in (getattr(args, "result", None), getattr(args, "data", None)) if x]
+        check_outputs(
+            [
+                ("--table", getattr(args, "table", None)),
+                ("--plot", getattr(args, "plot", None)),
+                ("--json", getattr(args, "json", None)),
+            ],
+            inputs=inputs,
+        )
 
 
 def check_report_folder(folder: str | os.PathLike) -> None:

@@ -716,3 +716,15 @@ def test_a_torn_journal_line_is_ignored(tmp_path):
     # compacted on the rerun: the header, r0, then r1 fitted again; the torn line gone
     lines = journal.read_text().splitlines()
     assert len(lines) == 3 and all(json.loads(line) for line in lines)
+
+
+def test_plan_outputs_never_replace_its_inputs(tmp_path):
+    # the plan's table, figure and JSON may not name the fit result it reads
+    from fitdyn.cli import main
+
+    src = tmp_path / "fit.json"
+    src.write_text("{}", encoding="utf-8")
+    before = src.read_bytes()
+    for opt in ("--table", "--plot", "--json"):
+        assert main(["plan", str(src), opt, str(src), "--quiet"]) == 2
+        assert src.read_bytes() == before
