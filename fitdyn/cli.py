@@ -808,20 +808,18 @@ def main(argv: Sequence[str] | None = None) -> int:
             raise
         print(f"fitdyn: error: {exc}", file=sys.stderr)
         return 2
-    except OSError as exc:
-        if isinstance(exc, BrokenPipeError):
-            raise
-        if args.debug:
-            raise
-        where = f"{exc.filename}: " if exc.filename else ""
-        print(f"fitdyn: error: {where}{exc.strerror or exc}", file=sys.stderr)
-        return 2
     except BrokenPipeError:  # output piped into a program that stopped reading
         import os
 
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
         return 0
+    except OSError as exc:
+        if args.debug:
+            raise
+        where = f"{exc.filename}: " if exc.filename else ""
+        print(f"fitdyn: error: {where}{exc.strerror or exc}", file=sys.stderr)
+        return 2
     except KeyboardInterrupt:
         print("fitdyn: interrupted", file=sys.stderr)
         return 130

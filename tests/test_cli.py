@@ -154,6 +154,21 @@ def test_console_entry_points_run():
     assert "Traceback" not in res.stderr
 
 
+def test_output_piped_into_a_reader_that_stops_is_no_error():
+    # `fitdyn fit ... | head -2`: the reader closes the pipe; no traceback, exit 0
+    demo = Path(__file__).resolve().parent.parent / "data_demo" / "chamber_cooling.csv"
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "fitdyn", "fit", str(demo), "--bootstrap", "0"],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+    )
+    proc.stdout.readline()
+    proc.stdout.close()  # stop reading, as head does
+    err = proc.stderr.read().decode()
+    assert proc.wait(timeout=120) == 0, err
+    assert "Traceback" not in err
+
+
 def _subparsers():
     import argparse
 
