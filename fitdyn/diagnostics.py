@@ -848,7 +848,10 @@ def _check_identifiability(rec: Recording, est: Any, uncertainty: Any, label: st
             "and no class can be given; record data in which both channels move",
         )
     kappa = _excitation_number(rec.values)
-    if kappa > 1e8:
+    # exact collinearity shows as a correlation within rounding of 1: 1 - r of a few
+    # machine epsilons gives kappa = sqrt(2 / (1 - r)) near 1e8, so the limit sits at
+    # 1e6 (1 - r = 2e-12), far beyond any noisy recording's
+    if kappa > 1e6:
         return Diagnostic(
             "identifiability",
             0.0,
@@ -887,15 +890,23 @@ def _check_identifiability(rec: Recording, est: Any, uncertainty: Any, label: st
             "or other boundary classes; record more informative data",
         )
     if (np.isfinite(t) and t < warn) or boot_zero:
+        # A boundary class the intervals cannot exclude: a verdict candidate (like
+        # "cannot exclude a center"), not a defect of the data, so the check passes and
+        # the verdict lists it (non_isolated_flag keys on the statement).
         how = f"|det A| / sd = {t:.3g}" if np.isfinite(t) else "the bootstrap interval"
+        if boot_zero:
+            how = "the bootstrap interval of det A contains 0" + (
+                f"; |det A| / sd = {t:.3g}" if np.isfinite(t) else ""
+            )
         return Diagnostic(
             "identifiability",
             t if np.isfinite(t) else None,
             warn,
-            "warn",
-            f"the determinant {det:.3g} is within its uncertainty of zero ({how}; "
-            f"threshold {warn:g}): {NON_ISOLATED} (a singular A, a line of equilibria); "
-            "a longer record, or one that moves the slow direction more, decides it",
+            "pass",
+            f"the regressors have full rank; the determinant {det:.3g} is within its "
+            f"uncertainty of zero ({how}; threshold {warn:g}): {NON_ISOLATED} (a singular "
+            "A, a line of equilibria), which the verdict lists among its candidates; a "
+            "longer record, or one that moves the slow direction more, decides it",
         )
     what = (
         f"|det A| / sd = {t:.3g}: the determinant is away from zero"
@@ -1063,13 +1074,24 @@ def unreliable_reason(diagnostics: Any) -> str | None:
 
 
 def non_isolated_flag(diagnostics: Any) -> bool:
-    """Whether the identifiability check says non-isolated equilibria cannot be excluded."""
+    """Whether the identifiability check says non-isolated equilibria cannot be excluded.
+
+    True when its advice makes the statement :data:`NON_ISOLATED` (a determinant within
+    its uncertainty of zero, which passes the check, or parameters the estimator
+    reports as unidentified, which warn), whatever the check's verdict, or when it
+    warns that the point estimate is singular.
+
+    Parameters
+    ----------
+    diagnostics : iterable of Diagnostic (or their dicts)
+    """
     for d in diagnostics or ():
-        if (
-            d.name == "identifiability"
-            and d.verdict != "pass"
-            and (NON_ISOLATED in d.advice or "singular" in d.advice)
-        ):
+        name = d["name"] if isinstance(d, dict) else d.name
+        verdict = d["verdict"] if isinstance(d, dict) else d.verdict
+        advice = str((d["advice"] if isinstance(d, dict) else d.advice) or "")
+        if name != "identifiability":
+            continue
+        if NON_ISOLATED in advice or (verdict != "pass" and "A is singular" in advice):
             return True
     return False
 
