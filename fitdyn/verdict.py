@@ -193,9 +193,16 @@ class Verdict:
                 "not reliable: " + "; ".join(parts) + f". The fit alone reads: {self.class_text()}"
             )
         if not self.assessed:
+            # the boundary classes the adequacy checks cannot exclude (the determinant
+            # within its delta-method uncertainty of zero) are said here too
+            cannot = (
+                "; cannot exclude " + join_labels([a_label(c) for c in self.cannot_exclude])
+                if self.cannot_exclude
+                else ""
+            )
             return (
-                f"{self.point_label} by the point estimate alone; stability not assessed "
-                "(no uncertainty analysis: bootstrap 0)"
+                f"{self.point_label} by the point estimate alone{cannot}; stability not "
+                "assessed (no uncertainty analysis: bootstrap 0)"
             )
         cls = self.class_text()
         if self.label != "undetermined":

@@ -329,18 +329,113 @@ def test_exactly_singular_system_is_never_a_confident_generic_class(seed):
         [pd.DataFrame({"t": t, "a": X[:, 0], "b": X[:, 1], "run": k}) for k, X in enumerate(runs)]
     )
     f = _fit(frame, time="t", channels=["a", "b"], trajectory="run", quiet=True)
+    # the verdict names the class or lists it among the classes it cannot exclude
     assert f.label == "non-isolated equilibria" or (
-        "cannot exclude non-isolated equilibria" in f.verdict.headline()
+        "non-isolated equilibria" in f.verdict.cannot_exclude
     )
     assert "non-isolated" in f.summary().split("Eigenvalues")[0]
     d = _by_name(f)["identifiability"]
-    assert d.verdict != "pass"
+    assert dg.non_isolated_flag(f.diagnostics)
+    # a determinant within its uncertainty of zero is a candidate (the check passes and
+    # says so); a singular point estimate warns
+    assert dg.NON_ISOLATED in d.advice or d.verdict == "warn"
+
+
+def _singular_frame(seed):
+    A = np.array([[-1.0, 0.0], [0.0, 0.0]])
+    t = np.linspace(0.0, 20.0, 200)
+    rng = np.random.default_rng(seed)
+    import pandas as pd
+
+    parts = []
+    for k in range(3):
+        X = _noisy(_ivp(lambda _t, y: A @ y, rng.normal(0.0, 2.0, 2), t), 2.0, 100 * seed + k)
+        parts.append(pd.DataFrame({"t": t, "a": X[:, 0], "b": X[:, 1], "run": k}))
+    return pd.concat(parts)
+
+
+def test_exactly_singular_system_with_bootstrap_keeps_the_class_open():
+    # with intervals, the verdict is at its confidence level: it may name a generic
+    # class only beside "cannot exclude non-isolated equilibria"
+    f = fitdyn.fit(
+        _singular_frame(0), time="t", channels=["a", "b"], trajectory="run",
+        bootstrap=200, seed=3, quiet=True,
+    )  # fmt: skip
+    v = f.verdict
+    assert v.assessed
+    assert v.label == "non-isolated equilibria" or "non-isolated equilibria" in v.candidates
+    assert f.label == "non-isolated equilibria" or "non-isolated equilibria" in v.cannot_exclude
+    assert "non-isolated equilibria" in v.headline()
+
+
+def test_determinant_within_its_uncertainty_of_zero_is_a_candidate_not_an_alarm():
+    # a slow node (eigenvalues -1 and -0.012) over a record a fraction of its slow time
+    # constant: det A cannot be told from 0, which the verdict lists, but the data are
+    # not defective, so the check passes and nothing is added to the warnings
+    t = np.linspace(0.0, 10.0, 100)
+    f = _fit(_linear([[-1.0, 0.0], [0.3, -0.012]], [2.0, 1.0], t, pct=3.0, seed=2), quiet=True)
+    d = _by_name(f)["identifiability"]
+    assert d.verdict == "pass"
+    assert d.statistic < dg.THRESHOLDS["identifiability"][0]
+    assert dg.NON_ISOLATED in d.advice
+    assert dg.non_isolated_flag(f.diagnostics)
+    assert f.verdict.cannot_exclude == ("non-isolated equilibria",)
+    assert "cannot exclude non-isolated equilibria" in f.summary()
+    assert not any(w.startswith("identifiability") for w in f.warnings)
+
+
+def test_a_bootstrap_interval_containing_zero_is_a_candidate(good_fit):
+    from types import SimpleNamespace
+
+    unc = SimpleNamespace(intervals={"determinant": (-0.5, 8.0)})
+    d = {x.name: x for x in dg.check(good_fit.recording, good_fit.estimate, unc, good_fit.label)}
+    ident = d["identifiability"]
+    assert ident.verdict == "pass"
+    assert "bootstrap interval" in ident.advice and dg.NON_ISOLATED in ident.advice
+    assert dg.non_isolated_flag(tuple(d.values()))
+
+
+def test_singular_point_estimate_warns(good_fit):
+    checks = dg.check(good_fit.recording, good_fit.estimate, None, "non-isolated equilibria")
+    d = {x.name: x for x in checks}
+    ident = d["identifiability"]
+    assert ident.verdict == "warn" and "A is singular" in ident.advice
+    assert dg.non_isolated_flag(tuple(d.values()))
+
+
+def test_unidentified_parameters_warn(good_fit):
+    est = replace(good_fit.estimate, warnings=("parameter(s) unidentified: a12",))
+    ident = {x.name: x for x in dg.check(good_fit.recording, est)}["identifiability"]
+    assert ident.verdict == "warn"
+    assert "not determined" in ident.advice and dg.NON_ISOLATED in ident.advice
+
+
+def test_exactly_collinear_channels_fail_identifiability(good_fit):
+    x = good_fit.recording.values[:, 0]
+    rec = good_fit.recording.with_values(np.column_stack([x, 3.0 * x + 1.0]))
+    ident = {d.name: d for d in dg.check(rec, good_fit.estimate)}["identifiability"]
+    assert ident.verdict == "fail" and "collinear" in ident.advice
+    assert not dg.non_isolated_flag((ident,))
+
+
+def test_non_isolated_flag_keys_on_the_statement_not_the_verdict():
+    D = dg.Diagnostic
+    said = f"the determinant 0.001 is within its uncertainty of zero: {dg.NON_ISOLATED}"
+    assert dg.non_isolated_flag([D("identifiability", 0.5, 1.96, "pass", said)])
+    assert dg.non_isolated_flag([D("identifiability", 0.5, 1.96, "pass", said).to_dict()])
+    assert not dg.non_isolated_flag([D("identifiability", 9.0, 1.96, "pass", "away from 0")])
+    assert dg.non_isolated_flag([D("identifiability", 0.0, 1.96, "warn", "A is singular: ...")])
+    # the statement counts only from the identifiability check
+    assert not dg.non_isolated_flag([D("agreement", 0.5, 4.0, "pass", said)])
+    assert not dg.non_isolated_flag([])
 
 
 def test_determinant_far_from_zero_passes_identifiability(good_fit):
     d = _by_name(good_fit)["identifiability"]
     assert d.verdict == "pass"
     assert d.statistic > dg.THRESHOLDS["identifiability"][0]
+    assert dg.NON_ISOLATED not in d.advice
+    assert not dg.non_isolated_flag(good_fit.diagnostics)
 
 
 # -- agreement -----------------------------------------------------------------------------

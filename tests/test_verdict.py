@@ -243,3 +243,27 @@ def test_verdict_is_a_frozen_record():
     with pytest.raises(dataclasses.FrozenInstanceError):
         v.label = "saddle"  # type: ignore[misc]
     assert str(v) == v.headline()
+
+
+def test_without_uncertainty_the_headline_still_says_what_it_cannot_exclude():
+    # the identifiability check's statement (det A within its uncertainty of zero) is a
+    # verdict candidate: without intervals the headline says it beside the point label
+    from fitdyn.diagnostics import NON_ISOLATED, Diagnostic
+
+    ident = Diagnostic("identifiability", 0.8, 1.96, "pass", f"det near 0: {NON_ISOLATED}")
+    v = verdict_of(_stand_in(None, "stable node", "asymptotically stable", (ident,)))
+    assert v.cannot_exclude == ("non-isolated equilibria",)
+    assert v.headline() == (
+        "stable node by the point estimate alone; cannot exclude non-isolated equilibria; "
+        "stability not assessed (no uncertainty analysis: bootstrap 0)"
+    )
+    # with intervals the class line lists it among the candidates
+    unc = _unc({"stable node": 1.0}, 1.0)
+    w = verdict_of(_stand_in(unc, "stable node", "asymptotically stable", (ident,)))
+    assert w.candidates == ("stable node", "non-isolated equilibria")
+    assert "cannot exclude non-isolated equilibria" in w.headline()
+    # a pass without the statement adds nothing
+    clean = Diagnostic("identifiability", 9.0, 1.96, "pass", "the determinant is away from zero")
+    assert verdict_of(
+        _stand_in(unc, "stable node", "asymptotically stable", (clean,))
+    ).candidates == ("stable node",)
