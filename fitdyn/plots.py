@@ -590,7 +590,7 @@ def _phase(
                         label=f"{100 * conf:.0f} % region of x*",
                     )
                 )
-        stable = fit.stability == classify.STABILITY[0]
+        stable, stab_word = _stability_marker(fit)
         ax.plot(
             [xs[0]],
             [xs[1]],
@@ -613,7 +613,7 @@ def _phase(
                 mfc=PALETTE["equilibrium"] if stable else "white",
                 mec=PALETTE["equilibrium"],
                 mew=1.6,
-                label=f"equilibrium x* ({'stable' if stable else 'not stable'})",
+                label=f"equilibrium x* ({stab_word})",
             )
         )
 
@@ -621,7 +621,7 @@ def _phase(
     ax.set_ylim(lo[1], hi[1])
     ax.set_xlabel(_label(nm.channels[0], nm.units[0]))
     ax.set_ylabel(_label(nm.channels[1], nm.units[1]))
-    ax.set_title(f"Phase plane: {fit.label}")
+    ax.set_title(f"Phase plane: {_class_title(fit)}")
     notes = []
     if xs is None:
         notes.append("A is singular: no unique equilibrium")
@@ -1156,7 +1156,7 @@ def _tracedet(fit: Any, ax: Any = None, *, max_points: int = 4000) -> Any:
         mew=0.8,
         zorder=9,
     )
-    handles.insert(0, _estimate_handle(f"estimate: {fit.label}"))
+    handles.insert(0, _estimate_handle(f"point estimate: {fit.label}"))
     ax.set_xlim(-T, T)
     ax.set_ylim(-D1, D2)
     nm = _names(fit)
@@ -1285,6 +1285,33 @@ _DRAW = {
     "tracedet": _tracedet,
     "residuals": _residuals,
 }
+
+
+def _class_title(fit: Any) -> str:
+    """The class as the verdict states it, so that a figure never reads more sure
+    than the summary: the decided class, or the point class marked as such."""
+    v = fit.verdict
+    if v.not_reliable:
+        return f"{fit.label} by the point estimate (not reliable: see the checks)"
+    if not v.assessed:
+        return f"{fit.label} (point estimate)"
+    if v.label == "undetermined":
+        return f"undetermined (point estimate: {fit.label})"
+    return v.label
+
+
+def _stability_marker(fit: Any) -> tuple[bool, str]:
+    """Whether to fill the equilibrium marker, and the legend's word for it: filled
+    only when the verdict is asymptotically stable at the confidence level (or, with
+    no uncertainty analysis, when the point estimate is)."""
+    v = fit.verdict
+    if v.assessed and not v.not_reliable:
+        return v.stability == "stable", {
+            "stable": "stable",
+            "unstable": "unstable",
+        }.get(v.stability, "stability undetermined")
+    point = fit.stability == classify.STABILITY[0]
+    return point, ("stable" if point else "not stable") + " by the point estimate"
 
 
 def plot(fit: Any, kind: str = "phase", ax: Any = None, **kwargs: Any) -> Any:

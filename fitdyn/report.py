@@ -666,7 +666,8 @@ def _caption(fit: Any, kind: str) -> str:
         text += (
             ". Lines: fitted trajectories, each starting at an open circle. Grey: flow of the "
             "fitted matrix. Dotted lines: nullclines, where one channel does not change. "
-            "The diamond is the equilibrium (filled when asymptotically stable)."
+            "The diamond is the equilibrium (filled when the verdict is asymptotically "
+            "stable at the confidence level)."
         )
         if np.all(np.asarray(fit.eigenvalues).imag == 0):
             text += (

@@ -449,3 +449,22 @@ def test_singular_matrix_has_no_equilibrium_but_still_draws():
     assert "no unique equilibrium" in ax._fitdyn_note.get_text()
     assert not by_gid(ax, "equilibrium")
     assert len(by_gid(ax, "start-0")) == 1
+
+
+def test_phase_figure_never_reads_more_sure_than_the_verdict():
+    # a center seen through noise: the verdict is undetermined, so the figure's title
+    # must say so and the equilibrium marker must not be filled as "stable"
+    from scipy.integrate import solve_ivp
+
+    A = np.array([[0.0, 1.0], [-1.0, 0.0]])
+    t = np.linspace(0.0, 20.0, 200)
+    sol = solve_ivp(lambda _t, y: A @ y, (0.0, 20.0), [1.0, 0.0], t_eval=t, rtol=1e-10)
+    X = sol.y.T + np.random.default_rng(1).normal(0.0, 0.05, (200, 2))
+    res = fitdyn.fit((t, X), bootstrap=300, seed=1, quiet=True)
+    assert res.verdict.stability == "undetermined"
+    fig = res.plot("phase")
+    ax = fig.axes[0]
+    assert "undetermined" in ax.get_title(loc="left")
+    eq = [ln for ln in ax.lines if ln.get_gid() == "equilibrium"][0]
+    assert eq.get_markerfacecolor() == "white"
+    plt.close(fig)
