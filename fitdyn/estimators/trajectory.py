@@ -106,6 +106,13 @@ _STALL = 1e-7
 #: memory budget (bytes) of one batched chunk (about 100 replicates of 200 samples: small
 #: enough for the (replicates x samples) arrays to stay in cache, fastest in our runs)
 _CHUNK_BYTES = 16 * 2**20
+#: largest factor (internal units) by which the model may amplify the rounding of its
+#: parameters: beyond it the rounding error of the model exceeds about 2e-4 of a
+#: channel's spread (machine epsilon 2.2e-16 times 1e12), so the fit matches the data
+#: only by cancelling digits double precision does not hold
+_MAX_AMPLIFICATION = 1e12
+#: failure reason of a replicate whose model amplifies rounding beyond that
+_WILD = "model beyond double precision"
 
 
 @dataclass
@@ -320,6 +327,34 @@ def _model_batch(theta: np.ndarray, bt: _Batch, jacobian: bool, xfg: tuple | Non
         J[:, rows, :, col] = np.swapaxes(F[..., 0], 0, 1)
         J[:, rows, :, col + 1] = np.swapaxes(F[..., 1], 0, 1)
     return model, J
+
+
+def _amplification(theta: np.ndarray, bt: _Batch) -> np.ndarray:
+    """Factor (B,) by which the model of each row amplifies the rounding of its parameters.
+
+    The model ``x* + expm(A tau) (x0 - x*)`` (or ``expm(A tau) x0 + tau phi1(A tau) b``)
+    is evaluated from parameters rounded to double precision; its absolute error is
+    about machine epsilon times ``max |expm(A tau)| * max(1, |x0|, |x*|)`` (plus the
+    ``b`` term), in internal units where each channel has spread 1.  A fast unstable
+    mode over a long record (``exp(Re lambda T)`` huge) makes this factor explode:
+    the fitted trajectory then hangs on digits the parameters do not have.
+    ``inf`` where not finite.
+    """
+    B = theta.shape[0]
+    off = 4 if bt.kind == "known" else 6
+    _, F, G = _exponentials(theta[:, :4], bt)
+    with np.errstate(over="ignore", invalid="ignore"):
+        size = np.max(np.abs(theta[:, off:]), axis=1, initial=1.0)
+        if bt.kind == "equilibrium":
+            size = np.maximum(size, np.max(np.abs(theta[:, 4:6]), axis=1))
+        elif bt.kind == "known":
+            assert bt.eq is not None
+            size = np.maximum(size, float(np.max(np.abs(bt.eq))))
+        amp = np.max(np.abs(F).reshape(B, -1), axis=1) * size
+        if G is not None:
+            b = np.max(np.abs(theta[:, 4:6]), axis=1)
+            amp = amp + np.max(np.abs(G).reshape(B, -1), axis=1) * b
+    return np.where(np.isfinite(amp), amp, np.inf)
 
 
 def _evaluate(theta: np.ndarray, bt: _Batch, jacobian: bool, xfg: tuple | None = None):
@@ -1147,6 +1182,9 @@ class TrajectoryEstimator(NonlinearEstimator):
         sol = self._solve(rec, values, eq)
         prob, kind, theta = sol["prob"], sol["kind"], sol["theta"]
         o = self._original(theta, prob, kind)
+        amp = float(_amplification(theta[None], _batch(prob, kind, prob.y, sol["w"]))[0])
+        if not amp <= _MAX_AMPLIFICATION:
+            raise EstimationError(_beyond_precision(rec, values, o["A"], amp), source=rec.source)
         model = prob.mu + prob.sd * _model(theta, prob, kind)
         resid = values - model
         n_par = theta.size
@@ -1297,18 +1335,30 @@ class TrajectoryEstimator(NonlinearEstimator):
                     & np.all(np.isfinite(A), axis=(1, 2))
                     & np.all(np.isfinite(b), axis=1)
                 )
+                # a model beyond double precision is no fit (as in :meth:`fit`)
+                wild = ~(
+                    _amplification(fit["theta"], replace(bt, w=fit["w"])) <= _MAX_AMPLIFICATION
+                )
+                if np.any(wild):
+                    reasons[_WILD] = reasons.get(_WILD, 0) + int(wild.sum())
+                    ok &= ~wild
                 mats[lo:hi] = np.where(ok[:, None, None], A, np.nan)
                 offs[lo:hi] = np.where(ok[:, None], b, np.nan)
                 valid[lo:hi] = ok
-                for key in np.unique(fit["status"][~ok]):
+                bad = ~ok & ~wild
+                for key in np.unique(fit["status"][bad]):
                     text = STATUS[int(key)] if key else "not finite"
-                    reasons[text] = reasons.get(text, 0) + int(np.sum((fit["status"] == key) & ~ok))
+                    reasons[text] = reasons.get(text, 0) + int(np.sum((fit["status"] == key) & bad))
         else:
             for r in range(B):
                 try:
                     sol = self._solve(rec, V[r], eq, budget)
                 except FitdynError as exc:
                     reasons[type(exc).__name__] = reasons.get(type(exc).__name__, 0) + 1
+                    continue
+                bt1 = _batch(sol["prob"], sol["kind"], sol["prob"].y, sol["w"])
+                if not _amplification(sol["theta"][None], bt1)[0] <= _MAX_AMPLIFICATION:
+                    reasons[_WILD] = reasons.get(_WILD, 0) + 1
                     continue
                 if not sol["converged"]:
                     text = STATUS[sol["status"]]
@@ -1326,6 +1376,26 @@ class TrajectoryEstimator(NonlinearEstimator):
             "reasons": reasons,
         }
         return SystemBatch(matrix=mats, offset=offs, valid=valid)
+
+
+def _beyond_precision(rec: Recording, values: np.ndarray, A: np.ndarray, amp: float) -> str:
+    """Why a fit whose model amplifies rounding beyond double precision is refused."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        re = float(np.max(linalg2.eigvals(A).real)) if np.all(np.isfinite(A)) else np.nan
+        med = np.median(values, axis=0)
+        dev = np.abs(values - med)
+        spread = np.quantile(dev, 0.75, axis=0)
+        z = dev / np.where(spread > 0, spread, np.maximum(np.max(dev, axis=0), 1e-300))
+    i, j = np.unravel_index(int(np.argmax(np.where(np.isfinite(z), z, -1.0))), z.shape)
+    row = int(rec.source_rows[i]) if len(rec.source_rows) == len(values) else int(i)
+    return (
+        f"the trajectory fit cannot be trusted on these data: its best model amplifies "
+        f"rounding by a factor of {amp:.1e} over the record (largest eigenvalue real part "
+        f"{re:.3g} over a span of {rec.time_span():.3g}), so it matches the samples only "
+        "through digits double precision does not hold; the data look like a jump, an "
+        f"outlier (the most extreme value is channel '{rec.channels[j]}' at row {row}) or "
+        "more than one system: check the data, or fit a shorter, cleaner stretch"
+    )
 
 
 def _pretty(names: list[str]) -> list[str]:
