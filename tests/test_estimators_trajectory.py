@@ -285,13 +285,39 @@ def test_fit_values_batch_equals_loop_and_counts_failures():
 
 def test_iteration_cap_reports_non_convergence():
     rec = spiral(noise=0.1, seed=12)
-    est = TrajectoryEstimator(max_iterations=1)
-    est.fit(rec)
     rng = np.random.default_rng(13)
     V = rec.values[None] + 0.3 * rng.standard_normal((6, *rec.values.shape))
+    # a converged point fit whose refits get one iteration each
+    est = TrajectoryEstimator()
+    assert est.fit(rec).extra["success"]
+    est.settings["max_iterations"] = 1
     out = est.fit_values(rec, V)
     assert est.last_failures["did_not_converge"] == int(np.sum(~out.valid)) > 0
     assert "iteration cap reached" in est.last_failures["reasons"]
+    # a point fit stopped by the cap: its replicates all fail at once, with the reason
+    capped = TrajectoryEstimator(max_iterations=1)
+    fit = capped.fit(rec)
+    assert not fit.extra["success"] and any("did not converge" in w for w in fit.warnings)
+    out = capped.fit_values(rec, V)
+    assert not out.valid.any() and np.all(np.isnan(out.matrix))
+    assert capped.last_failures["reasons"] == {"the point fit did not converge": 6}
+
+
+def test_bootstrap_chunks_share_one_time_budget():
+    # the bootstrap refits a point fit in chunks (calls of fit_values): the budget is
+    # spent across all of them, not renewed per call; a new point fit renews it
+    rec = spiral(noise=0.1, seed=14)
+    est = TrajectoryEstimator()
+    fit = est.fit(rec)
+    V = (rec.values - fit.residuals)[None] + 0.0 * rec.values[None]
+    est.settings["time_budget"] = 1e-9  # the refits' budget, spent at once
+    assert not est.fit_values(rec, V).valid.any()
+    assert est.last_failures["reasons"] == {"time budget spent": 1}
+    est.settings["time_budget"] = None  # the next chunk still has the spent budget
+    assert not est.fit_values(rec, V).valid.any()
+    assert est.last_failures["reasons"] == {"time budget spent": 1}
+    est.fit(rec)
+    assert est.fit_values(rec, V).valid.all()
 
 
 def test_diverging_saddle_is_fitted_quickly():

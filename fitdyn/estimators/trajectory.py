@@ -27,8 +27,10 @@ Every start of the point fit, and every bootstrap replicate of
 :meth:`TrajectoryEstimator.fit_values`, is one row of the same batched solve (in
 chunks of bounded memory); the point fit is the one-replicate case.  Each solve has
 an iteration cap (``max_iterations`` per weighting round) and a wall-clock budget
-(``time_budget`` seconds per call); a replicate that does not converge within them
-is returned as not valid and counted by the bootstrap as a failed fit, never redrawn
+(``time_budget`` seconds for the point fit, and as many for all the bootstrap refits of
+that point fit together, however many calls they are chunked into); a replicate that
+does not converge within them is returned as not valid and counted by the bootstrap as
+a failed fit, never redrawn
 (``extra["did_not_converge"]`` and :attr:`TrajectoryEstimator.last_failures` give the
 counts).
 
@@ -113,6 +115,8 @@ _CHUNK_BYTES = 16 * 2**20
 _MAX_AMPLIFICATION = 1e12
 #: failure reason of a replicate whose model amplifies rounding beyond that
 _WILD = "model beyond double precision"
+#: failure reason of every replicate of a point fit that did not converge
+_UNCONVERGED = "the point fit did not converge"
 
 
 @dataclass
@@ -598,9 +602,10 @@ class TrajectoryEstimator(NonlinearEstimator):
     xtol : float
         Relative step size at which an iteration counts as converged (default 1e-10).
     time_budget : float or None
-        Wall-clock seconds one call of :meth:`fit` or :meth:`fit_values` may spend
-        iterating (default 30); rows still iterating then stop and count as not
-        converged.  ``None``: no limit.
+        Wall-clock seconds one call of :meth:`fit` may spend iterating (default 30),
+        and as many for all the calls of :meth:`fit_values` that refit replicates of
+        that point fit (the bootstrap's chunks share one budget); rows still iterating
+        then stop and count as not converged.  ``None``: no limit.
     """
 
     name = "trajectory"
@@ -841,7 +846,9 @@ class TrajectoryEstimator(NonlinearEstimator):
         likelihood with unknown per-channel noise variances (each variance profiled
         out), so it does not depend on the starting weights.  Rows whose residuals
         are too small to estimate a noise level (noise-free data) keep their
-        weights (``estimated`` False).  Only the rows still changing are refitted.
+        weights (``estimated`` False).  Only the rows still changing are refitted; a
+        row whose solve does not converge keeps that solve's result and leaves the
+        reweighting, so a row costs at most one non-converged solve.
 
         Returns
         -------
@@ -895,7 +902,12 @@ class TrajectoryEstimator(NonlinearEstimator):
                 estimated[act[ok]] = True
                 done = ~ok | (fitted[act] & (change < _REWEIGHT_CHANGE))
                 settled[act[done]] = True
-                run(act[~done])
+                todo = act[~done]
+                run(todo)
+                # a solve that did not converge ends the reweighting of its row: weights
+                # from a point that is no minimum mean nothing, and refitting it round
+                # after round would multiply the iteration cap by the rounds
+                settled[todo[~conv[todo]]] = True
         run(np.flatnonzero(~fitted))
         return {
             "theta": theta,
@@ -1244,6 +1256,10 @@ class TrajectoryEstimator(NonlinearEstimator):
             "mu": prob.mu.copy(),
             "sd": prob.sd.copy(),
             "T": prob.T,
+            # one budget for all refits of this point fit, however the caller chunks
+            # them (created at the first refit)
+            "budget": None,
+            "converged": bool(sol["converged"]),
         }
         extra = {
             "initial_states": o["x0"],
@@ -1290,7 +1306,9 @@ class TrajectoryEstimator(NonlinearEstimator):
         solve.  Otherwise each replicate gets the full procedure of :meth:`fit`, one
         after the other (a fallback, not the bootstrap's path).  Replicates whose fit
         fails or does not converge are returned with ``valid = False`` (never
-        redrawn); :attr:`last_failures` counts them by reason.
+        redrawn); :attr:`last_failures` counts them by reason.  The refits of one
+        point fit share one ``time_budget`` across calls; once it is spent, the
+        remaining replicates fail at once ("time budget spent").
         """
         eq = check_equilibrium(equilibrium)
         V, _ = replicate_values(rec, values)
@@ -1299,7 +1317,6 @@ class TrajectoryEstimator(NonlinearEstimator):
         offs = np.full((B, 2), np.nan)
         valid = np.zeros(B, dtype=bool)
         reasons: dict[str, int] = {}
-        budget = _Budget(self.settings["time_budget"])
         ref = self._reference
         use_ref = (
             ref is not None
@@ -1310,6 +1327,16 @@ class TrajectoryEstimator(NonlinearEstimator):
             and (eq is None or np.array_equal(ref["eq"], eq))
         )
         if use_ref:
+            assert ref is not None
+            if ref["budget"] is None:
+                ref["budget"] = _Budget(self.settings["time_budget"])
+            budget = ref["budget"]
+        if use_ref and not ref["converged"]:
+            # replicates drawn around a point that is no minimum say nothing about the
+            # sampling spread (each would wander to its own minimum, mostly to the
+            # iteration cap or the budget): they all fail, at once, with the reason
+            reasons[_UNCONVERGED] = B
+        elif use_ref:
             assert ref is not None
             # the point estimate's internal units (same times, so same time scale)
             base = self._problem(rec, np.asarray(rec.values, dtype=float), eq)
@@ -1324,6 +1351,11 @@ class TrajectoryEstimator(NonlinearEstimator):
             size = self._chunk(rec.n_samples, P)
             for lo in range(0, B, size):
                 hi = min(B, lo + size)
+                if budget.left() == 0.0:
+                    # the budget is spent: the rest fail without a first evaluation
+                    text = STATUS[2]
+                    reasons[text] = reasons.get(text, 0) + (B - lo)
+                    break
                 with np.errstate(over="ignore", invalid="ignore"):
                     y = (V[lo:hi] - ref["mu"]) / ref["sd"]
                 bt = _batch(prob, kind, y, ref["w"])
@@ -1350,6 +1382,7 @@ class TrajectoryEstimator(NonlinearEstimator):
                     text = STATUS[int(key)] if key else "not finite"
                     reasons[text] = reasons.get(text, 0) + int(np.sum((fit["status"] == key) & bad))
         else:
+            budget = _Budget(self.settings["time_budget"])
             for r in range(B):
                 try:
                     sol = self._solve(rec, V[r], eq, budget)
