@@ -285,13 +285,39 @@ def test_fit_values_batch_equals_loop_and_counts_failures():
 
 def test_iteration_cap_reports_non_convergence():
     rec = spiral(noise=0.1, seed=12)
-    est = TrajectoryEstimator(max_iterations=1)
-    est.fit(rec)
     rng = np.random.default_rng(13)
     V = rec.values[None] + 0.3 * rng.standard_normal((6, *rec.values.shape))
+    # a converged point fit whose refits get one iteration each
+    est = TrajectoryEstimator()
+    assert est.fit(rec).extra["success"]
+    est.settings["max_iterations"] = 1
     out = est.fit_values(rec, V)
     assert est.last_failures["did_not_converge"] == int(np.sum(~out.valid)) > 0
     assert "iteration cap reached" in est.last_failures["reasons"]
+    # a point fit stopped by the cap: its replicates all fail at once, with the reason
+    capped = TrajectoryEstimator(max_iterations=1)
+    fit = capped.fit(rec)
+    assert not fit.extra["success"] and any("did not converge" in w for w in fit.warnings)
+    out = capped.fit_values(rec, V)
+    assert not out.valid.any() and np.all(np.isnan(out.matrix))
+    assert capped.last_failures["reasons"] == {"the point fit did not converge": 6}
+
+
+def test_bootstrap_chunks_share_one_time_budget():
+    # the bootstrap refits a point fit in chunks (calls of fit_values): the budget is
+    # spent across all of them, not renewed per call; a new point fit renews it
+    rec = spiral(noise=0.1, seed=14)
+    est = TrajectoryEstimator()
+    fit = est.fit(rec)
+    V = (rec.values - fit.residuals)[None] + 0.0 * rec.values[None]
+    est.settings["time_budget"] = 1e-9  # the refits' budget, spent at once
+    assert not est.fit_values(rec, V).valid.any()
+    assert est.last_failures["reasons"] == {"time budget spent": 1}
+    est.settings["time_budget"] = None  # the next chunk still has the spent budget
+    assert not est.fit_values(rec, V).valid.any()
+    assert est.last_failures["reasons"] == {"time budget spent": 1}
+    est.fit(rec)
+    assert est.fit_values(rec, V).valid.all()
 
 
 def test_diverging_saddle_is_fitted_quickly():
@@ -309,3 +335,75 @@ def test_diverging_saddle_is_fitted_quickly():
     boot = est.fit_values(rec, (rec.values - fit.residuals)[None] + 0.0 * rec.values[None])
     assert boot.valid.all()
     np.testing.assert_allclose(boot.matrix[0], fit.matrix, atol=1e-6)
+
+
+# Fuzz finds (tests/test_fuzz.py): a few samples with one value near 3e16.  Before the
+# batched solver these took 7 to 36 s; the fitted model then grows by e^90 over the
+# record and matches the samples only through digits double precision does not hold.
+JUMP_FILES = {
+    "late-jump": "#c\ntime,a,b\n0.0,-4.77742e-201,9.00771\n1.0,-1.22555e-175,-0.333333\n"
+    "2.0,-7.44475,-6.0039\n3.0,-5.93929,-5.44391\n4.0,-1.02206,-7.053e-42\n5.0,0,0\n"
+    "6.0,0,3.1080664327161948e+16",
+    "zeros-then-jump": "time,a,b\r0.0,0.0,0\r1.0,0,0\r2.0,0,0\r3.0,0.0,0\r4.0,0.0,0\r5.0,0,0\r"
+    "6.0,0.0,0.0\r7.0,0.0,0.0\r8.0,3.229091129361084e+16,2.89226e+16",
+}
+
+
+@pytest.fixture(params=sorted(JUMP_FILES))
+def jump_recording(request, tmp_path):
+    path = tmp_path / f"{request.param}.csv"
+    path.write_text(JUMP_FILES[request.param], newline="")
+    return fitdyn.read(path)
+
+
+def test_a_model_beyond_double_precision_is_refused_in_one_line(jump_recording):
+    with pytest.raises(EstimationError, match="double precision does not hold") as info:
+        TrajectoryEstimator().fit(jump_recording)
+    msg = str(info.value)
+    assert "\n" not in msg and jump_recording.source in msg
+    assert "channel 'b' at row 9" in msg or "channel 'a' at row 10" in msg  # the jump
+    # replicates of such data are failed replicates, never a confident answer
+    est = TrajectoryEstimator()
+    out = est.fit_values(jump_recording, jump_recording.values[None])
+    assert not out.valid.any()
+    assert est.last_failures["reasons"] == {"model beyond double precision": 1}
+
+
+def test_jump_files_end_with_a_refusal_or_a_flagged_finite_fit(jump_recording):
+    with pytest.raises(EstimationError, match="double precision"):
+        fitdyn.fit(jump_recording, method="trajectory", bootstrap=0)
+    for bootstrap in (0, 200):
+        try:
+            res = fitdyn.fit(jump_recording, method="auto", bootstrap=bootstrap, seed=3)
+        except EstimationError as exc:
+            assert "\n" not in str(exc)
+            continue
+        assert "trajectory" not in res.method  # the diagnostic fit was not used
+        assert np.all(np.isfinite(res.matrix)) and np.all(np.isfinite(res.eigenvalues))
+        res.to_json()
+
+
+def test_a_fast_but_representable_growth_is_still_fitted():
+    # an unstable node growing 1e6-fold over the record (solve_ivp data, noise-free):
+    # far below the precision limit, so it is fitted, not refused
+    A = np.array([[0.7, 0.1], [0.0, 0.5]])
+    t = np.linspace(0.0, 20.0, 60)
+    rec = _solve_ivp_recording(A, np.zeros(2), np.array([1e-3, 2e-3]), t, 0.0, 0)
+    fit = TrajectoryEstimator().fit(rec)
+    np.testing.assert_allclose(fit.matrix, A, atol=1e-6)
+
+
+def test_bootstrap_replicates_beyond_double_precision_count_as_failed():
+    # replicates refitted from a point fit (the bootstrap's path): the one with a jump
+    # to 3e16 in its last sample is a failed replicate with its reason, the clean one not
+    rec = spiral(n=9, noise=0.1, seed=3, times=np.arange(9.0))
+    est = TrajectoryEstimator()
+    est.fit(rec)
+    V = np.repeat(rec.values[None], 3, axis=0)
+    V[1, -1] = [3.229091129361084e16, 2.89226e16]
+    V[2, :-1] = 0.0
+    V[2, -1] = [3.229091129361084e16, 2.89226e16]
+    out = est.fit_values(rec, V)
+    assert out.valid.tolist() == [True, False, False]
+    assert est.last_failures["reasons"] == {"model beyond double precision": 2}
+    assert np.all(np.isnan(out.matrix[1:]))

@@ -27,8 +27,10 @@ Every start of the point fit, and every bootstrap replicate of
 :meth:`TrajectoryEstimator.fit_values`, is one row of the same batched solve (in
 chunks of bounded memory); the point fit is the one-replicate case.  Each solve has
 an iteration cap (``max_iterations`` per weighting round) and a wall-clock budget
-(``time_budget`` seconds per call); a replicate that does not converge within them
-is returned as not valid and counted by the bootstrap as a failed fit, never redrawn
+(``time_budget`` seconds for the point fit, and as many for all the bootstrap refits of
+that point fit together, however many calls they are chunked into); a replicate that
+does not converge within them is returned as not valid and counted by the bootstrap as
+a failed fit, never redrawn
 (``extra["did_not_converge"]`` and :attr:`TrajectoryEstimator.last_failures` give the
 counts).
 
@@ -106,6 +108,15 @@ _STALL = 1e-7
 #: memory budget (bytes) of one batched chunk (about 100 replicates of 200 samples: small
 #: enough for the (replicates x samples) arrays to stay in cache, fastest in our runs)
 _CHUNK_BYTES = 16 * 2**20
+#: largest factor (internal units) by which the model may amplify the rounding of its
+#: parameters: beyond it the rounding error of the model exceeds about 2e-4 of a
+#: channel's spread (machine epsilon 2.2e-16 times 1e12), so the fit matches the data
+#: only by cancelling digits double precision does not hold
+_MAX_AMPLIFICATION = 1e12
+#: failure reason of a replicate whose model amplifies rounding beyond that
+_WILD = "model beyond double precision"
+#: failure reason of every replicate of a point fit that did not converge
+_UNCONVERGED = "the point fit did not converge"
 
 
 @dataclass
@@ -320,6 +331,34 @@ def _model_batch(theta: np.ndarray, bt: _Batch, jacobian: bool, xfg: tuple | Non
         J[:, rows, :, col] = np.swapaxes(F[..., 0], 0, 1)
         J[:, rows, :, col + 1] = np.swapaxes(F[..., 1], 0, 1)
     return model, J
+
+
+def _amplification(theta: np.ndarray, bt: _Batch) -> np.ndarray:
+    """Factor (B,) by which the model of each row amplifies the rounding of its parameters.
+
+    The model ``x* + expm(A tau) (x0 - x*)`` (or ``expm(A tau) x0 + tau phi1(A tau) b``)
+    is evaluated from parameters rounded to double precision; its absolute error is
+    about machine epsilon times ``max |expm(A tau)| * max(1, |x0|, |x*|)`` (plus the
+    ``b`` term), in internal units where each channel has spread 1.  A fast unstable
+    mode over a long record (``exp(Re lambda T)`` huge) makes this factor explode:
+    the fitted trajectory then hangs on digits the parameters do not have.
+    ``inf`` where not finite.
+    """
+    B = theta.shape[0]
+    off = 4 if bt.kind == "known" else 6
+    _, F, G = _exponentials(theta[:, :4], bt)
+    with np.errstate(over="ignore", invalid="ignore"):
+        size = np.max(np.abs(theta[:, off:]), axis=1, initial=1.0)
+        if bt.kind == "equilibrium":
+            size = np.maximum(size, np.max(np.abs(theta[:, 4:6]), axis=1))
+        elif bt.kind == "known":
+            assert bt.eq is not None
+            size = np.maximum(size, float(np.max(np.abs(bt.eq))))
+        amp = np.max(np.abs(F).reshape(B, -1), axis=1) * size
+        if G is not None:
+            b = np.max(np.abs(theta[:, 4:6]), axis=1)
+            amp = amp + np.max(np.abs(G).reshape(B, -1), axis=1) * b
+    return np.where(np.isfinite(amp), amp, np.inf)
 
 
 def _evaluate(theta: np.ndarray, bt: _Batch, jacobian: bool, xfg: tuple | None = None):
@@ -563,9 +602,10 @@ class TrajectoryEstimator(NonlinearEstimator):
     xtol : float
         Relative step size at which an iteration counts as converged (default 1e-10).
     time_budget : float or None
-        Wall-clock seconds one call of :meth:`fit` or :meth:`fit_values` may spend
-        iterating (default 30); rows still iterating then stop and count as not
-        converged.  ``None``: no limit.
+        Wall-clock seconds one call of :meth:`fit` may spend iterating (default 30),
+        and as many for all the calls of :meth:`fit_values` that refit replicates of
+        that point fit (the bootstrap's chunks share one budget); rows still iterating
+        then stop and count as not converged.  ``None``: no limit.
     """
 
     name = "trajectory"
@@ -806,7 +846,9 @@ class TrajectoryEstimator(NonlinearEstimator):
         likelihood with unknown per-channel noise variances (each variance profiled
         out), so it does not depend on the starting weights.  Rows whose residuals
         are too small to estimate a noise level (noise-free data) keep their
-        weights (``estimated`` False).  Only the rows still changing are refitted.
+        weights (``estimated`` False).  Only the rows still changing are refitted; a
+        row whose solve does not converge keeps that solve's result and leaves the
+        reweighting, so a row costs at most one non-converged solve.
 
         Returns
         -------
@@ -860,7 +902,12 @@ class TrajectoryEstimator(NonlinearEstimator):
                 estimated[act[ok]] = True
                 done = ~ok | (fitted[act] & (change < _REWEIGHT_CHANGE))
                 settled[act[done]] = True
-                run(act[~done])
+                todo = act[~done]
+                run(todo)
+                # a solve that did not converge ends the reweighting of its row: weights
+                # from a point that is no minimum mean nothing, and refitting it round
+                # after round would multiply the iteration cap by the rounds
+                settled[todo[~conv[todo]]] = True
         run(np.flatnonzero(~fitted))
         return {
             "theta": theta,
@@ -1147,6 +1194,9 @@ class TrajectoryEstimator(NonlinearEstimator):
         sol = self._solve(rec, values, eq)
         prob, kind, theta = sol["prob"], sol["kind"], sol["theta"]
         o = self._original(theta, prob, kind)
+        amp = float(_amplification(theta[None], _batch(prob, kind, prob.y, sol["w"]))[0])
+        if not amp <= _MAX_AMPLIFICATION:
+            raise EstimationError(_beyond_precision(rec, values, o["A"], amp), source=rec.source)
         model = prob.mu + prob.sd * _model(theta, prob, kind)
         resid = values - model
         n_par = theta.size
@@ -1206,6 +1256,10 @@ class TrajectoryEstimator(NonlinearEstimator):
             "mu": prob.mu.copy(),
             "sd": prob.sd.copy(),
             "T": prob.T,
+            # one budget for all refits of this point fit, however the caller chunks
+            # them (created at the first refit)
+            "budget": None,
+            "converged": bool(sol["converged"]),
         }
         extra = {
             "initial_states": o["x0"],
@@ -1252,7 +1306,9 @@ class TrajectoryEstimator(NonlinearEstimator):
         solve.  Otherwise each replicate gets the full procedure of :meth:`fit`, one
         after the other (a fallback, not the bootstrap's path).  Replicates whose fit
         fails or does not converge are returned with ``valid = False`` (never
-        redrawn); :attr:`last_failures` counts them by reason.
+        redrawn); :attr:`last_failures` counts them by reason.  The refits of one
+        point fit share one ``time_budget`` across calls; once it is spent, the
+        remaining replicates fail at once ("time budget spent").
         """
         eq = check_equilibrium(equilibrium)
         V, _ = replicate_values(rec, values)
@@ -1261,7 +1317,6 @@ class TrajectoryEstimator(NonlinearEstimator):
         offs = np.full((B, 2), np.nan)
         valid = np.zeros(B, dtype=bool)
         reasons: dict[str, int] = {}
-        budget = _Budget(self.settings["time_budget"])
         ref = self._reference
         use_ref = (
             ref is not None
@@ -1272,6 +1327,16 @@ class TrajectoryEstimator(NonlinearEstimator):
             and (eq is None or np.array_equal(ref["eq"], eq))
         )
         if use_ref:
+            assert ref is not None
+            if ref["budget"] is None:
+                ref["budget"] = _Budget(self.settings["time_budget"])
+            budget = ref["budget"]
+        if use_ref and not ref["converged"]:
+            # replicates drawn around a point that is no minimum say nothing about the
+            # sampling spread (each would wander to its own minimum, mostly to the
+            # iteration cap or the budget): they all fail, at once, with the reason
+            reasons[_UNCONVERGED] = B
+        elif use_ref:
             assert ref is not None
             # the point estimate's internal units (same times, so same time scale)
             base = self._problem(rec, np.asarray(rec.values, dtype=float), eq)
@@ -1286,6 +1351,11 @@ class TrajectoryEstimator(NonlinearEstimator):
             size = self._chunk(rec.n_samples, P)
             for lo in range(0, B, size):
                 hi = min(B, lo + size)
+                if budget.left() == 0.0:
+                    # the budget is spent: the rest fail without a first evaluation
+                    text = STATUS[2]
+                    reasons[text] = reasons.get(text, 0) + (B - lo)
+                    break
                 with np.errstate(over="ignore", invalid="ignore"):
                     y = (V[lo:hi] - ref["mu"]) / ref["sd"]
                 bt = _batch(prob, kind, y, ref["w"])
@@ -1297,18 +1367,31 @@ class TrajectoryEstimator(NonlinearEstimator):
                     & np.all(np.isfinite(A), axis=(1, 2))
                     & np.all(np.isfinite(b), axis=1)
                 )
+                # a model beyond double precision is no fit (as in :meth:`fit`)
+                wild = ~(
+                    _amplification(fit["theta"], replace(bt, w=fit["w"])) <= _MAX_AMPLIFICATION
+                )
+                if np.any(wild):
+                    reasons[_WILD] = reasons.get(_WILD, 0) + int(wild.sum())
+                    ok &= ~wild
                 mats[lo:hi] = np.where(ok[:, None, None], A, np.nan)
                 offs[lo:hi] = np.where(ok[:, None], b, np.nan)
                 valid[lo:hi] = ok
-                for key in np.unique(fit["status"][~ok]):
+                bad = ~ok & ~wild
+                for key in np.unique(fit["status"][bad]):
                     text = STATUS[int(key)] if key else "not finite"
-                    reasons[text] = reasons.get(text, 0) + int(np.sum((fit["status"] == key) & ~ok))
+                    reasons[text] = reasons.get(text, 0) + int(np.sum((fit["status"] == key) & bad))
         else:
+            budget = _Budget(self.settings["time_budget"])
             for r in range(B):
                 try:
                     sol = self._solve(rec, V[r], eq, budget)
                 except FitdynError as exc:
                     reasons[type(exc).__name__] = reasons.get(type(exc).__name__, 0) + 1
+                    continue
+                bt1 = _batch(sol["prob"], sol["kind"], sol["prob"].y, sol["w"])
+                if not _amplification(sol["theta"][None], bt1)[0] <= _MAX_AMPLIFICATION:
+                    reasons[_WILD] = reasons.get(_WILD, 0) + 1
                     continue
                 if not sol["converged"]:
                     text = STATUS[sol["status"]]
@@ -1326,6 +1409,26 @@ class TrajectoryEstimator(NonlinearEstimator):
             "reasons": reasons,
         }
         return SystemBatch(matrix=mats, offset=offs, valid=valid)
+
+
+def _beyond_precision(rec: Recording, values: np.ndarray, A: np.ndarray, amp: float) -> str:
+    """Why a fit whose model amplifies rounding beyond double precision is refused."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        re = float(np.max(linalg2.eigvals(A).real)) if np.all(np.isfinite(A)) else np.nan
+        med = np.median(values, axis=0)
+        dev = np.abs(values - med)
+        spread = np.quantile(dev, 0.75, axis=0)
+        z = dev / np.where(spread > 0, spread, np.maximum(np.max(dev, axis=0), 1e-300))
+    i, j = np.unravel_index(int(np.argmax(np.where(np.isfinite(z), z, -1.0))), z.shape)
+    row = int(rec.source_rows[i]) if len(rec.source_rows) == len(values) else int(i)
+    return (
+        f"the trajectory fit cannot be trusted on these data: its best model amplifies "
+        f"rounding by a factor of {amp:.1e} over the record (largest eigenvalue real part "
+        f"{re:.3g} over a span of {rec.time_span():.3g}), so it matches the samples only "
+        "through digits double precision does not hold; the data look like a jump, an "
+        f"outlier (the most extreme value is channel '{rec.channels[j]}' at row {row}) or "
+        "more than one system: check the data, or fit a shorter, cleaner stretch"
+    )
 
 
 def _pretty(names: list[str]) -> list[str]:
