@@ -96,11 +96,11 @@ def speed_rows(replicates: int, old_reps: int, loop_reps: int, seed: int) -> lis
     for k, cls in enumerate(CLASSES):
         rec, _ = _recording(cls, seed + k)
         # auto point fit (median of five; the first call also warms caches)
-        fitdyn.fit(rec, quiet=True)
+        fitdyn.fit(rec, bootstrap=0, quiet=True)
         times = []
         for _ in range(5):
             c0 = time.process_time()
-            f = fitdyn.fit(rec, quiet=True)
+            f = fitdyn.fit(rec, bootstrap=0, quiet=True)
             times.append(time.process_time() - c0)
         auto_ms = 1e3 * float(np.median(times))
         # batched
@@ -194,7 +194,7 @@ def auto_rows(per_class: int, seed: int) -> list[str]:
                 rec = accuracy.make_dataset(cls, cond, seed + 1000 * i + 11)[0]
                 c0 = time.process_time()
                 try:
-                    fitdyn.fit(rec, quiet=True)
+                    fitdyn.fit(rec, bootstrap=0, quiet=True)
                 except FitdynError:
                     pass
                 dt = time.process_time() - c0

@@ -91,8 +91,6 @@ from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
-from scipy import stats
-from scipy.signal import lfilter
 
 from fitdyn import linalg2
 from fitdyn.errors import EstimationError, FitdynError
@@ -224,6 +222,13 @@ def _by_p(name: str, p: float, what: str, advice: str, cap: str = "fail") -> Dia
     return Diagnostic(name, p, warn, "pass", what)
 
 
+def _lfilter(b: Any, a: Any, x: Any, axis: int = -1) -> np.ndarray:
+    """:func:`scipy.signal.lfilter`, imported on first use (scipy.signal is slow to load)."""
+    from scipy.signal import lfilter
+
+    return lfilter(b, a, x, axis=axis)
+
+
 # ----------------------------------------------------------------------------------
 # shared pieces
 # ----------------------------------------------------------------------------------
@@ -304,6 +309,8 @@ def _f_test(
     with np.errstate(divide="ignore", invalid="ignore"):
         F = ((rss_r - rss_u) / q) / (rss_u / dof)
     F = np.where(rss_u > 0, F, np.where(rss_r > rss_u, np.inf, 0.0))
+    from scipy import stats  # here, not at import: scipy.stats is slow to load
+
     return F, stats.f.sf(F, q, dof), rr
 
 
@@ -351,7 +358,7 @@ def _ma1_theta(x: np.ndarray) -> float:
     d = x - x.mean()
 
     def css(th: float) -> float:
-        e = lfilter([1.0], [1.0, th], d)
+        e = _lfilter([1.0], [1.0, th], d)
         return float(e @ e)
 
     return float(
@@ -361,7 +368,7 @@ def _ma1_theta(x: np.ndarray) -> float:
 
 def _ma1_innovations(x: np.ndarray) -> np.ndarray:
     """Innovations of an MA(1) fitted by conditional least squares."""
-    return lfilter([1.0], [1.0, _ma1_theta(x)], x - x.mean())
+    return _lfilter([1.0], [1.0, _ma1_theta(x)], x - x.mean())
 
 
 def whiteness_test(residuals: np.ndarray, method: str = "", lags: int | None = None) -> Whiteness:
@@ -570,7 +577,7 @@ def nonlinearity_test(
                 th = _ma1_theta(rr[:, 0])
                 yj, Zrj, Zxj = y[:, j : j + 1], Zr, Zx
                 if abs(th) > 0.05:
-                    yj, Zrj, Zxj = (lfilter([1.0], [1.0, th], z, axis=0) for z in (yj, Zr, Zx))
+                    yj, Zrj, Zxj = (_lfilter([1.0], [1.0, th], z, axis=0) for z in (yj, Zr, Zx))
                 F, p = _nested_tests(yj, Zrj, Zxj, 3)
                 ps.extend(p)
                 Fs.extend(F)
