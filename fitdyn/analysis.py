@@ -554,11 +554,11 @@ class Fit:
             return []
         lines = ["", "Checks"]
         w = max(len(d.name) for d in self.diagnostics) + 2
+        from fitdyn.diagnostics import describe_statistic
+
         for d in self.diagnostics:
-            stat = "" if d.statistic is None else f"{d.statistic:.3g}"
-            thr = "" if d.threshold is None else f"(threshold {d.threshold:.3g})"
-            note = "see Warnings" if d.verdict != "pass" else ""
-            lines.append(f"  {d.name:<{w}}{d.verdict:<6}{stat:>10} {thr:<20}{note}".rstrip())
+            note = "; see Warnings" if d.verdict != "pass" else ""
+            lines.append(f"  {d.name:<{w}}{d.verdict:<6}{describe_statistic(d)}{note}".rstrip())
         return lines
 
     def __str__(self) -> str:

@@ -135,6 +135,32 @@ THRESHOLDS: dict[str, tuple[float, float]] = {
     "agreement": (4.0, 8.0),
 }
 
+#: What each check's statistic is, and on which side of its threshold it warns.
+STATISTICS: dict[str, tuple[str, str]] = {
+    "nonlinearity": ("p-value of the nonlinear terms", "below"),
+    "whiteness": ("Ljung-Box p-value", "below"),
+    "sampling": ("h max|lambda|", "above"),
+    "record_length": ("record / slowest time scale", "below"),
+    "excitation": ("condition number of the states", "above"),
+    "identifiability": ("|det A| / sd", "below"),
+    "agreement": ("standard errors apart", "above"),
+}
+
+
+def describe_statistic(d: Any) -> str:
+    """The statistic of a check in words: ``Ljung-Box p-value 0.037 (warns below
+    0.001)``; ``not computed`` when the check has none."""
+    label, side = STATISTICS.get(d.name, ("statistic", "beyond"))
+    if d.statistic is None:
+        advice = str(d.advice or "")
+        return advice.split(":")[0] if advice.startswith("not ") else "not computed"
+    text = f"{label} {d.statistic:.3g}"
+    if d.threshold is not None:
+        word = "fails" if d.verdict == "fail" else "warns"
+        text += f" ({word} {side} {d.threshold:.3g})"
+    return text
+
+
 #: Estimators whose residuals are not innovations: correlated by construction.
 _NOT_INNOVATIONS = ("derivative", "integral")
 #: Estimators whose residuals are a moving average of order one under sensor noise.

@@ -145,15 +145,24 @@ def _verdict(fit: Any) -> list[dict[str, str]]:
 
 def _diagnostics_context(fit: Any) -> tuple[str | None, list[dict[str, str]]]:
     """The not-reliable reason (or None) and the rows of the checks table."""
-    from fitdyn.diagnostics import unreliable_reason
+    from fitdyn.diagnostics import STATISTICS, unreliable_reason
 
     diags = tuple(getattr(fit, "diagnostics", ()) or ())
     rows = [
         {
             "name": d.name,
             "verdict": d.verdict,
-            "statistic": "" if d.statistic is None else f"{d.statistic:.3g}",
-            "threshold": "" if d.threshold is None else f"{d.threshold:.3g}",
+            "statistic": (
+                ""
+                if d.statistic is None
+                else f"{STATISTICS.get(d.name, ('',))[0]} {d.statistic:.3g}"
+            ),
+            "threshold": (
+                ""
+                if d.threshold is None
+                else f"{'fails' if d.verdict == 'fail' else 'warns'} "
+                f"{STATISTICS.get(d.name, ('', 'beyond'))[1]} {d.threshold:.3g}"
+            ),
             "advice": d.advice,
         }
         for d in diags
