@@ -118,7 +118,9 @@ def _verdict(fit: Any) -> list[dict[str, str]]:
         value = "undetermined"
         sub = v.class_text().removeprefix("undetermined: ")
     cells.append({"what": "verdict", "value": value, "sub": sub, "tone": tone})
-    if not v.assessed:
+    if v.not_reliable:
+        stab, sub = "not reliable", f"the linear fit alone reads: {v.stability_text()}"
+    elif not v.assessed:
         stab, sub = "not assessed", f"the point estimate is {fit.stability}"
     elif v.stability == "stable":
         stab, sub = "asymptotically stable", f"P(stable) = {fmt.prob(v.p_stable)}"

@@ -184,11 +184,11 @@ class Verdict:
         if self.not_reliable:
             from fitdyn.diagnostics import FAILURE_REASONS
 
+            # short reasons only: the checks' advice is in the warnings and the checks
             parts = []
-            for name, advice in self.not_reliable:
-                said = f"{name} failed" + (f" ({advice})" if advice else "")
+            for name, _advice in self.not_reliable:
                 reason = FAILURE_REASONS.get(name)
-                parts.append(f"{reason}: {said}" if reason else said)
+                parts.append(f"{reason} ({name} failed)" if reason else f"{name} failed")
             return (
                 "not reliable: " + "; ".join(parts) + f". The fit alone reads: {self.class_text()}"
             )

@@ -105,8 +105,7 @@ def test_failed_adequacy_checks_make_it_not_reliable():
                          advice="")  # fmt: skip
     v = verdict_of(_stand_in(unc, diagnostics=(ok, check)))
     assert v.headline() == (
-        "not reliable: residual whiteness failed (the linear model leaves structure; try "
-        "another method). The fit alone reads: stable spiral (P 1.00)"
+        "not reliable: residual whiteness failed. The fit alone reads: stable spiral (P 1.00)"
     )
     assert v.to_dict()["not_reliable"] == ["residual whiteness"]
     assert v.tone == "neutral"
@@ -229,7 +228,7 @@ def test_fit_level_verdict_uses_failed_diagnostics():
     failed = Diagnostic("stationarity", 5.0, 1.0, "fail", "split the record")
     res = dataclasses.replace(res, diagnostics=(failed,))
     assert res.verdict.not_reliable == (("stationarity", "split the record"),)
-    assert "Verdict          not reliable: stationarity failed (split the record)" in (
+    assert "Verdict          not reliable: stationarity failed. The fit alone reads:" in (
         res.summary()
     )
     assert report._verdict(res)[0]["value"] == "not reliable"
