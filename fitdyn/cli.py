@@ -615,7 +615,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
     from fitdyn.importer import read
 
     rec = read(args.file, **_read_options(args))
-    print(rec.summary())
+    # files first, then the text: a reader that stops early (| head) loses no file
     if args.json:
         from fitdyn.atomic import write_text
 
@@ -624,6 +624,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
         from fitdyn.atomic import write_csv_frame
 
         write_csv_frame(args.write_clean, rec.to_frame())
+    _print(rec.summary())
     return 0
 
 
@@ -637,14 +638,14 @@ def _cmd_fit(args: argparse.Namespace) -> int:
         window=args.window,
         **_read_options(args),
     )
-    if not args.quiet:
-        _print(result.summary(verbose=args.verbose))
+    # files first, then the text: a reader that stops early (| head) loses no file
     if args.json:
         result.to_json(args.json)
-    if args.report:
-        path = result.report(args.report)
-        if not args.quiet:
-            print(f"\nreport written to {path}")
+    path = result.report(args.report) if args.report else None
+    if not args.quiet:
+        _print(result.summary(verbose=args.verbose))
+        if path is not None:
+            _print(f"\nreport written to {path}")
     return 0
 
 
@@ -768,14 +769,14 @@ def _cmd_plan(args: argparse.Namespace) -> int:
         quiet=args.quiet or not sys.stderr.isatty(),
         **given,
     )
-    if not args.quiet:
-        print(result.summary())
     if args.table:
         result.write_table(args.table)
     if args.plot:
         result.plot(args.plot)
     if args.json:
         result.to_json(args.json)
+    if not args.quiet:  # after the files: a reader that stops early loses none
+        _print(result.summary())
     return 0
 
 

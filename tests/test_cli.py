@@ -154,11 +154,22 @@ def test_console_entry_points_run():
     assert "Traceback" not in res.stderr
 
 
-def test_output_piped_into_a_reader_that_stops_is_no_error():
+def test_output_piped_into_a_reader_that_stops_is_no_error(tmp_path):
     # `fitdyn fit ... | head -2`: the reader closes the pipe; no traceback, exit 0
     demo = Path(__file__).resolve().parent.parent / "data_demo" / "chamber_cooling.csv"
+    report = tmp_path / "rep"
     proc = subprocess.Popen(
-        [sys.executable, "-m", "fitdyn", "fit", str(demo), "--bootstrap", "0"],
+        [
+            sys.executable,
+            "-m",
+            "fitdyn",
+            "fit",
+            str(demo),
+            "--bootstrap",
+            "0",
+            "--report",
+            str(report),
+        ],  # fmt: skip
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
     )
@@ -167,6 +178,7 @@ def test_output_piped_into_a_reader_that_stops_is_no_error():
     err = proc.stderr.read().decode()
     assert proc.wait(timeout=120) == 0, err
     assert "Traceback" not in err
+    assert (report / "index.html").is_file()  # the files were written before the text
 
 
 def _subparsers():
