@@ -487,6 +487,10 @@ def _reached(
     confidence: float,
     width_abs: float | None,
 ) -> np.ndarray:
+    # a missing value (a failed fit) never reaches the target
+    p_stable = np.nan_to_num(np.asarray(p_stable, dtype=float), nan=0.5)
+    p_class = np.nan_to_num(np.asarray(p_class, dtype=float))
+    width = np.nan_to_num(np.asarray(width, dtype=float), nan=np.inf)
     if target == "stability":
         return (p_stable >= confidence) | (p_stable <= 1 - confidence)
     if target == "class":
@@ -1450,17 +1454,7 @@ def plan(
                         np.concatenate([f[j] for f in fitted]) for j in (0, 1, 2, 3)
                     )
                     allv = np.concatenate([f[5] for f in fitted])
-                ok = (
-                    _reached(
-                        target,
-                        np.nan_to_num(p_st, nan=0.5),
-                        np.nan_to_num(p_cl),
-                        np.nan_to_num(wid, nan=np.inf),
-                        confidence,
-                        width_abs,
-                    )
-                    & allv
-                )
+                ok = _reached(target, p_st, p_cl, wid, confidence, width_abs) & allv
                 side = _decided(int(ok.sum()), ok.size, probability)
                 if side is not None and ok.size < N:
                     break  # the binomial check already separates p from the required one
@@ -1566,17 +1560,7 @@ def plan(
                     covs.get(i),
                 )
                 p_st, p_cl, wid, _cv, _m, valid, _c = res
-                ok = (
-                    _reached(
-                        target,
-                        np.nan_to_num(p_st, nan=0.5),
-                        np.nan_to_num(p_cl),
-                        np.nan_to_num(wid, nan=np.inf),
-                        confidence,
-                        width_abs,
-                    )
-                    & valid
-                )
+                ok = _reached(target, p_st, p_cl, wid, confidence, width_abs) & valid
                 hits[good] = ok
             pd = float(hits.mean())
             rows[i] = DesignResult(
