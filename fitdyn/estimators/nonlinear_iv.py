@@ -74,6 +74,7 @@ from fitdyn.estimators.derivative import check_equilibrium, reject_unknown
 from fitdyn.estimators.instrumental import WEAK_INSTRUMENTS, _canonical_min
 from fitdyn.estimators.lm import TimeBudget, levenberg_marquardt
 from fitdyn.estimators.prediction import (
+    _CHUNK_BYTES,
     ALIASING_LIMIT,
     PredictionEstimator,
     _evaluate,
@@ -248,7 +249,7 @@ class NonlinearIVEstimator(PredictionEstimator):
         return instrumented_pairs(rec, self.name)
 
     def _chunk(self, m: int, starts: int) -> int:
-        return int(max(1, (64 * 2**20) // max(m * starts * _BYTES_PER_PAIR, 1)))
+        return int(max(1, _CHUNK_BYTES // max(m * starts * _BYTES_PER_PAIR, 1)))
 
     # -- the batched solve ------------------------------------------------------------
     def _solve_chunk(
