@@ -213,3 +213,42 @@ def test_asymptotic_agrees_with_bootstrap_on_a_long_record():
         lo_a, hi_a = a.intervals[name]
         width = hi_b - lo_b
         assert abs(lo_a - lo_b) < 0.2 * width and abs(hi_a - hi_b) < 0.2 * width, name
+
+
+# Values computed with the code of commit 0ba1f56 (before the one-step solver was
+# made faster): point estimate, first three replicates and the mean of 40 (all
+# valid) bias-corrected parametric replicates.
+_BEFORE_POINT = [-0.3534048893874753, 1.01749113204221, -0.9085475203171757, -0.34979604329530384]
+_BEFORE_REPS = [
+    [-0.29894003089839305, 0.7632702829181403, -1.1301390583785484, -0.47542145843770806],
+    [-0.06391678167752687, 0.8808135081027795, -0.6632132743186805, -0.27225088439247036],
+    [-0.2127434131301958, 0.9927957543305563, -0.891231611713597, -0.39590116783809326],
+]
+_BEFORE_MEAN = [-0.23039272051435744, 0.9193783308929453, -0.9165092817308427, -0.33083898694354463]
+
+
+def test_results_equal_those_before_the_speed_up():
+    rec = _irregular_mixed(300, seed=9)
+    est = NonlinearIVEstimator()
+    e = est.fit(rec)
+    u = bootstrap(rec, est, e, replicates=40, seed=4, quiet=True)
+    assert u.bias_corrected
+    assert np.allclose(e.matrix.ravel(), _BEFORE_POINT, rtol=1e-9, atol=0)
+    assert np.allclose(u.matrices[:3].reshape(3, 4), _BEFORE_REPS, rtol=1e-8, atol=0)
+    assert np.all(np.isfinite(u.matrices))
+    assert np.allclose(u.matrices.mean(axis=0).ravel(), _BEFORE_MEAN, rtol=1e-8, atol=0)
+
+
+def test_time_budget_spent_fails_replicates_and_is_checked():
+    from fitdyn.estimators.lm import STATUS
+
+    with pytest.raises(EstimationError, match="time_budget"):
+        NonlinearIVEstimator(time_budget=-2)
+    rec = _irregular_mixed(120, seed=3)
+    est = NonlinearIVEstimator(noise="moments", time_budget=1e-9)
+    e = est.fit(rec)
+    assert any("time budget" in w for w in e.warnings)
+    V = rec.values[None] + 0.05 * np.random.default_rng(1).standard_normal((4, rec.n_samples, 2))
+    s = est.fit_values(rec, V)
+    assert not s.valid.any()
+    assert est.last_failures["reasons"] == {STATUS[2]: 4}

@@ -341,3 +341,83 @@ def test_result_is_usable_by_the_bootstrap_and_reports():
     assert linalg2.eigvals(e.matrix).shape == (2,)
     d = e.to_dict()
     assert d["method"] == "prediction" and d["settings"]["weighting"] == "step"
+
+
+# ----------------------------------------- (6) speed-up regression and time budget
+# Values computed with the code of commit 0ba1f56 (before the one-step solver was
+# made faster): point estimate, the first three bootstrap replicates and the mean of
+# the 40 (all valid) bias-corrected parametric replicates.  The faster code forms
+# the powers of the series by products, which moves the converged solutions by
+# rounding only (1e-11 relative here).
+_BEFORE_POINT = [-0.2742215286459524, 1.259757229160138, -0.9699009421458084, -0.35228237049528616]
+_BEFORE_REPS = [
+    [-0.24622443037220748, 1.1936383202480567, -1.0480401718259378, -0.3406182670993903],
+    [-0.206492425172744, 1.3414100096405905, -0.9663984919580204, -0.2469958561662967],
+    [-0.27764175721147455, 1.3053555197343494, -1.0599571325957813, -0.34535956882059216],
+]
+_BEFORE_MEAN = [-0.255165890951516, 1.2247144204464697, -0.9646552224095115, -0.3584366582293329]
+
+
+def test_results_equal_those_before_the_speed_up():
+    rec = _noisy_irregular(n=120)
+    est = get_estimator("prediction")
+    e = est.fit(rec)
+    u = bootstrap(rec, est, e, replicates=40, seed=17, quiet=True)
+    assert u.bias_corrected
+    assert np.allclose(e.matrix.ravel(), _BEFORE_POINT, rtol=1e-9, atol=0)
+    assert np.allclose(u.matrices[:3].reshape(3, 4), _BEFORE_REPS, rtol=1e-8, atol=0)
+    assert np.all(np.isfinite(u.matrices))
+    assert np.allclose(u.matrices.mean(axis=0).ravel(), _BEFORE_MEAN, rtol=1e-8, atol=0)
+
+
+def test_time_budget_none_changes_nothing_and_bad_budgets_are_refused():
+    rec = _noisy_irregular(n=120)
+    a = PredictionEstimator().fit(rec)
+    b = PredictionEstimator(time_budget=None).fit(rec)
+    assert np.array_equal(a.matrix, b.matrix)
+    for bad in (0, -1.0, float("nan"), "soon"):
+        with pytest.raises(EstimationError, match="time_budget"):
+            PredictionEstimator(time_budget=bad)
+
+
+def test_spent_time_budget_fails_the_remaining_replicates_at_once():
+    from fitdyn.estimators.lm import STATUS
+
+    rec = _noisy_irregular(n=120)
+    V = rec.values[None] + 0.05 * np.random.default_rng(2).standard_normal((6, rec.n_samples, 2))
+    # a budget far too short: the point fit stops unconverged and says so, and the
+    # refits find the budget spent before their first chunk
+    est = PredictionEstimator(time_budget=1e-9)
+    e = est.fit(rec)
+    assert any("did not converge" in w and "time budget" in w for w in e.warnings)
+    s = est.fit_values(rec, V)
+    assert not s.valid.any() and np.all(np.isnan(s.matrix))
+    assert est.last_failures == {"replicates": 6, "failed": 6, "reasons": {STATUS[2]: 6}}
+
+
+def test_time_budget_is_shared_by_all_refits_of_one_point_fit(monkeypatch):
+    import fitdyn.estimators.lm as lm
+
+    rec = _noisy_irregular(n=120)
+    V = rec.values[None] + 0.05 * np.random.default_rng(2).standard_normal((6, rec.n_samples, 2))
+    est = PredictionEstimator(time_budget=5.0)
+    est.fit(rec)
+    first = est.fit_values(rec, V)
+    assert first.valid.all() and est.last_failures["reasons"] == {}
+    # the clock jumps past the budget the first call started: a second call (say
+    # the bias-correction stage) draws on the same budget and fails at once, where
+    # a fresh budget would have left it five seconds
+    real = lm.time.perf_counter
+
+    class _Clock:
+        @staticmethod
+        def perf_counter() -> float:
+            return real() + 10.0
+
+    monkeypatch.setattr(lm, "time", _Clock)
+    second = est.fit_values(rec, V)
+    assert not second.valid.any()
+    assert est.last_failures["reasons"] == {lm.STATUS[2]: 6}
+    # a new point fit starts a new budget
+    est.fit(rec)
+    assert est.fit_values(rec, V).valid.all()

@@ -41,7 +41,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["Solution", "levenberg_marquardt", "solve_spd", "sum_of_squares", "STATUS"]
+__all__ = ["Solution", "TimeBudget", "levenberg_marquardt", "solve_spd", "sum_of_squares", "STATUS"]
 
 #: predicted relative decrease below which Gauss-Newton steps are taken untested
 _ROUNDING_ZONE = 1e-12
@@ -119,6 +119,23 @@ def solve_spd(lhs: np.ndarray, rhs: np.ndarray) -> np.ndarray:
             except np.linalg.LinAlgError:
                 pass
         return out
+
+
+class TimeBudget:
+    """Wall-clock budget shared by several solves: the seconds left for the next one.
+
+    Parameters
+    ----------
+    seconds : float or None
+        The whole budget; ``None`` for no limit.
+    """
+
+    def __init__(self, seconds: float | None) -> None:
+        self.end = None if seconds is None else time.perf_counter() + float(seconds)
+
+    def left(self) -> float | None:
+        """Seconds left (0.0 once spent), or ``None`` without a limit."""
+        return None if self.end is None else max(self.end - time.perf_counter(), 0.0)
 
 
 def levenberg_marquardt(
@@ -229,7 +246,8 @@ def levenberg_marquardt(
         delta = np.where(ok_step[:, None], delta, 0.0)
         tiny = np.max(np.abs(delta), axis=1) <= xtol * size
         trial = theta[act] + np.where(zone[:, None], gn, delta)
-        out = evaluate(trial, prob.take(act), True)
+        # every row still iterating (in order): the problems need no copy
+        out = evaluate(trial, prob if act.size == B else prob.take(act), True)
         e_new, J_new = out[0], out[1]
         assert J_new is not None
         J_new = J_new.reshape(act.size, -1, P)

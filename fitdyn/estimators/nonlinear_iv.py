@@ -72,8 +72,9 @@ from fitdyn.errors import EstimationError, FitdynError, SamplingError, TooFewSam
 from fitdyn.estimators.base import Estimate, equilibrium_from
 from fitdyn.estimators.derivative import check_equilibrium, reject_unknown
 from fitdyn.estimators.instrumental import WEAK_INSTRUMENTS, _canonical_min
-from fitdyn.estimators.lm import levenberg_marquardt
+from fitdyn.estimators.lm import TimeBudget, levenberg_marquardt
 from fitdyn.estimators.prediction import (
+    _CHUNK_BYTES,
     ALIASING_LIMIT,
     PredictionEstimator,
     _evaluate,
@@ -201,6 +202,10 @@ class NonlinearIVEstimator(PredictionEstimator):
         Levenberg-Marquardt iteration cap (default 100).
     xtol : float
         Relative step size at which an iteration counts as converged (default 1e-10).
+    time_budget : float or None
+        Wall-clock seconds for the point fit's solve and, shared, for all the
+        bootstrap refits of that point fit (default 30; ``None`` for no limit), as in
+        :class:`~fitdyn.estimators.prediction.PredictionEstimator`.
 
     Notes
     -----
@@ -221,12 +226,22 @@ class NonlinearIVEstimator(PredictionEstimator):
         frequencies: Any = (0.5, 2.0),
         max_iterations: int = 100,
         xtol: float = 1e-10,
+        time_budget: float | None = 30.0,
         **unknown: Any,
     ) -> None:
-        reject_unknown(self.name, unknown, ("noise", "frequencies", "max_iterations", "xtol"))
+        reject_unknown(
+            self.name,
+            unknown,
+            ("noise", "frequencies", "max_iterations", "xtol", "time_budget"),
+        )
         if noise not in ("likelihood", "moments"):
             raise EstimationError(f"noise must be 'likelihood' or 'moments', got {noise!r}")
-        super().__init__(frequencies=frequencies, max_iterations=max_iterations, xtol=xtol)
+        super().__init__(
+            frequencies=frequencies,
+            max_iterations=max_iterations,
+            xtol=xtol,
+            time_budget=time_budget,
+        )
         del self.settings["weighting"]
         self.settings["noise"] = noise
 
@@ -234,7 +249,7 @@ class NonlinearIVEstimator(PredictionEstimator):
         return instrumented_pairs(rec, self.name)
 
     def _chunk(self, m: int, starts: int) -> int:
-        return int(max(1, (64 * 2**20) // max(m * starts * _BYTES_PER_PAIR, 1)))
+        return int(max(1, _CHUNK_BYTES // max(m * starts * _BYTES_PER_PAIR, 1)))
 
     # -- the batched solve ------------------------------------------------------------
     def _solve_chunk(
@@ -311,6 +326,7 @@ class NonlinearIVEstimator(PredictionEstimator):
             _contribution_scale(theta0, prob),
             self.settings["max_iterations"],
             self.settings["xtol"],
+            time_budget=self._budget.left(),
         )
         solved = sol.cost <= ROOT_TOLERANCE * _contribution_scale(sol.theta, prob)
         r, _ = _evaluate(sol.theta, prob.inner, False)
@@ -356,6 +372,7 @@ class NonlinearIVEstimator(PredictionEstimator):
         first, h = self._pairs(rec)
         V = np.asarray(rec.values, dtype=float)[None]
         starts = self._starts(rec, V, eq, first, h)
+        self._budget = TimeBudget(self.settings["time_budget"])
         sol = self._solve_chunk(V, eq, first, h, starts)
         A = sol["A"][0]
         xs = sol["xs"][0]
@@ -396,8 +413,9 @@ class NonlinearIVEstimator(PredictionEstimator):
         if not conv:
             warns.append(
                 f"the instrumental-variable fit did not converge within "
-                f"{self.settings['max_iterations']} iterations; the estimate may be "
-                "inaccurate (raise max_iterations or check the data)"
+                f"{self.settings['max_iterations']} iterations or the time budget; the "
+                "estimate may be inaccurate (raise max_iterations or time_budget, or "
+                "check the data)"
             )
         if not solved:
             warns.append(
@@ -450,6 +468,7 @@ class NonlinearIVEstimator(PredictionEstimator):
             "eq": None if eq is None else eq.copy(),
             "A": A.copy(),
             "xs": xs.copy(),
+            "budget": None,  # one budget for all refits of this point fit
         }
         extra = {
             "process_noise": Q,

@@ -80,7 +80,7 @@ from fitdyn.estimators.base import (
     equilibrium_from,
 )
 from fitdyn.estimators.derivative import check_equilibrium, reject_unknown, replicate_values
-from fitdyn.estimators.lm import Solution, levenberg_marquardt
+from fitdyn.estimators.lm import STATUS, Solution, TimeBudget, levenberg_marquardt
 from fitdyn.recording import Recording
 
 __all__ = ["PredictionEstimator", "frechet_expm", "step_pairs", "process_noise_moments"]
@@ -89,8 +89,11 @@ __all__ = ["PredictionEstimator", "frechet_expm", "step_pairs", "process_noise_m
 ALIASING_LIMIT = np.pi / 2
 #: longest / shortest step above which the fit warns about the spread of weights
 STEP_RATIO_LIMIT = 1e6
-#: memory budget (bytes) of one batched chunk of Levenberg-Marquardt
-_CHUNK_BYTES = 64 * 2**20
+#: memory budget (bytes) of one batched chunk of Levenberg-Marquardt (small enough
+#: that a chunk's (B, m) work arrays stay in cache: 16 MB ran the bootstraps of
+#: benchmarks/coverage.py's irregular datasets 10-20 % faster than 64 MB; the
+#: numbers do not depend on it)
+_CHUNK_BYTES = 16 * 2**20
 #: bytes per (replicate x start x pair) inside the solver (Jacobian and temporaries)
 _BYTES_PER_PAIR = 8 * 120
 _SERIES_Q = 1e-2  # |q| below which d f1 / d q uses its series
@@ -117,27 +120,33 @@ def _coefficients(X: np.ndarray) -> tuple[np.ndarray, ...]:
     pos = q >= 0
     large = pos & (r >= 1.0)
     small = np.abs(q) < _SERIES_Q
+    neg = ~pos
+    mid = ~(large | small)  # where the direct mid-range formulas are used
     with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
         rl = np.where(large, r, 1.0)
         ep = np.exp(s + rl)
         em = np.exp(s - rl)
         es = np.exp(s)
         rs = np.where(large | small, 1.0, r)  # r of the direct mid-range formulas
-        f0 = np.where(
-            large,
-            0.5 * (ep + em),
-            np.where(pos, es * np.cosh(np.where(large, 0.0, r)), es * np.cos(r)),
-        )
-        f1_mid = np.where(pos, np.sinh(rs) / rs, np.sin(rs) / rs)
-        f1_small = 1.0 + q / 6.0 + q * q / 120.0 + q**3 / 5040.0 + q**4 / 362880.0
+        # each transcendental once, and only where its branch is selected (the
+        # elementwise values are those of evaluating both branches everywhere)
+        sh = np.sinh(rs, where=pos & mid, out=np.ones_like(rs))
+        ch = np.cosh(rs, where=pos & mid, out=np.ones_like(rs))
+        sn = np.sin(rs, where=neg, out=np.ones_like(rs))
+        cs = np.cos(rs, where=neg & mid, out=np.ones_like(rs))
+        cr = np.cos(r, where=neg, out=np.ones_like(r))
+        chr_ = np.cosh(np.where(large, 0.0, r), where=pos & ~large, out=np.ones_like(r))
+        f0 = np.where(large, 0.5 * (ep + em), np.where(pos, es * chr_, es * cr))
+        f1_mid = np.where(pos, sh, sn) / rs
+        # powers by products: numpy's general power is several times slower than
+        # the rest of this function together (the values agree to rounding)
+        q2 = q * q
+        q3 = q2 * q
+        f1_small = 1.0 + q / 6.0 + q2 / 120.0 + q3 / 5040.0 + (q2 * q2) / 362880.0
         f1 = np.where(large, 0.5 * (ep - em) / rl, es * np.where(small, f1_small, f1_mid))
-        g_large = ((rl - 1.0) * ep + (rl + 1.0) * em) / (4.0 * rl**3)
-        g_mid = np.where(
-            pos,
-            (rs * np.cosh(rs) - np.sinh(rs)) / (2.0 * rs**3),
-            (np.sin(rs) - rs * np.cos(rs)) / (2.0 * rs**3),
-        )
-        g_small = 1.0 / 6.0 + q / 60.0 + q * q / 1680.0 + q**3 / 90720.0
+        g_large = ((rl - 1.0) * ep + (rl + 1.0) * em) / (4.0 * (rl * rl * rl))
+        g_mid = np.where(pos, rs * ch - sh, sn - rs * cs) / (2.0 * (rs * rs * rs))
+        g_small = 1.0 / 6.0 + q / 60.0 + q2 / 1680.0 + q3 / 90720.0
         g = np.where(large, g_large, es * np.where(small, g_small, g_mid))
     return s, hh, q, f0, f1, g
 
@@ -196,21 +205,41 @@ def _unit_frechet_times(X: np.ndarray, tau: np.ndarray, d0: np.ndarray, d1: np.n
     Md0 = hh * d0 + x01 * d1
     Md1 = x10 * d0 - hh * d1
     out = np.empty((*s.shape, 2, 4))
+    # the products shared by the four directions, each formed once; the sign flips
+    # and halvings are exact, so the values are those of the direction-wise formula
+    hf1 = 0.5 * f1
     # c = 11 and 22: ds = tau / 2, dq = +-hh tau, dM = +-tau diag(1, -1) / 2
-    for c, sign in ((0, 1.0), (3, -1.0)):
-        ds = 0.5 * t
-        dq = sign * hh * t
-        alpha = f0 * ds + 0.5 * f1 * dq
-        beta = f1 * ds + g * dq
-        out[..., 0, c] = alpha * d0 + beta * Md0 + f1 * sign * 0.5 * t * d0
-        out[..., 1, c] = alpha * d1 + beta * Md1 - f1 * sign * 0.5 * t * d1
+    ds = 0.5 * t
+    f0ds = f0 * ds
+    f1ds = f1 * ds
+    hht = hh * t
+    a2 = hf1 * hht
+    b2 = g * hht
+    w = hf1 * t
+    wd0 = w * d0
+    wd1 = w * d1
+    alpha = f0ds + a2
+    beta = f1ds + b2
+    out[..., 0, 0] = alpha * d0 + beta * Md0 + wd0
+    out[..., 1, 0] = alpha * d1 + beta * Md1 - wd1
+    alpha = f0ds - a2
+    beta = f1ds - b2
+    out[..., 0, 3] = alpha * d0 + beta * Md0 - wd0
+    out[..., 1, 3] = alpha * d1 + beta * Md1 + wd1
     # c = 12 (dq = x10 tau, dM = tau E_12) and c = 21 (dq = x01 tau, dM = tau E_21)
-    for c, xq in ((1, x10), (2, x01)):
+    f1t = f1 * t
+    for c, xq, dd in ((1, x10, d1), (2, x01, d0)):
         dq = xq * t
-        alpha = 0.5 * f1 * dq
+        alpha = hf1 * dq
         beta = g * dq
-        out[..., 0, c] = alpha * d0 + beta * Md0 + (f1 * t * d1 if c == 1 else 0.0)
-        out[..., 1, c] = alpha * d1 + beta * Md1 + (f1 * t * d0 if c == 2 else 0.0)
+        v0 = alpha * d0 + beta * Md0
+        v1 = alpha * d1 + beta * Md1
+        if c == 1:
+            v0 += f1t * dd
+        else:
+            v1 += f1t * dd
+        out[..., 0, c] = v0
+        out[..., 1, c] = v1
     return out
 
 
@@ -307,6 +336,17 @@ def _apply2(L: np.ndarray, v: np.ndarray) -> np.ndarray:
     )
 
 
+def _is_identity(L: np.ndarray) -> bool:
+    """Whether every (2, 2) block of ``L`` is the identity (channel weighting off).
+
+    Then the products with ``L`` are skipped: they would multiply by one and add
+    zeros, which leaves finite values unchanged (a row with a non-finite value fails
+    either way).
+    """
+    return bool(np.all(L[:, 0, 0] == 1.0) and np.all(L[:, 1, 1] == 1.0)
+                and not np.any(L[:, 0, 1]) and not np.any(L[:, 1, 0]))  # fmt: skip
+
+
 def _evaluate(
     theta: np.ndarray, prob: _Problem, jacobian: bool
 ) -> tuple[np.ndarray, np.ndarray | None]:
@@ -326,7 +366,8 @@ def _evaluate(
             axis=-1,
         )
         r = prob.u1 - xs[:, None, :] - Fd
-        e = _apply2(prob.Linv, r) * prob.root[None, :, None]
+        white = _is_identity(prob.Linv)
+        e = (r if white else _apply2(prob.Linv, r)) * prob.root[None, :, None]
     if not jacobian:
         return e, None
     B, m = r.shape[:2]
@@ -335,7 +376,9 @@ def _evaluate(
         J[..., :4] = -_unit_frechet_times(X, prob.tau, d0, d1)
         if prob.eq is None:
             J[..., 4:6] = F - np.eye(2)  # d r / d x* = -(I - F)
-        J = _apply2(prob.Linv, J) * prob.root[None, :, None, None]
+        if not white:
+            J = _apply2(prob.Linv, J)
+        J *= prob.root[None, :, None, None]
     return e, J
 
 
@@ -347,19 +390,23 @@ def _levenberg_marquardt(
     ftol: float = 1e-20,
     evaluate: Callable[..., tuple[np.ndarray, np.ndarray | None]] | None = None,
     scale: np.ndarray | None = None,
+    time_budget: float | None = None,
 ) -> Solution:
     """The shared batched core (:func:`fitdyn.estimators.lm.levenberg_marquardt`) on
     one-step problems.
 
     ``evaluate`` defaults to the weighted one-step errors of a :class:`_Problem`;
     ``scale`` (B,) is the size of a cost that counts as exact zero times 1e28
-    (default: from the data).
+    (default: from the data); ``time_budget`` (seconds) stops the rows still
+    iterating, as not converged.
     """
     if evaluate is None:
         evaluate = _evaluate
     if scale is None:
         scale = np.sum(prob.u1 * prob.u1, axis=(1, 2)) * float(np.max(prob.root)) ** 2
-    return levenberg_marquardt(theta0, prob, evaluate, scale, max_iter, xtol, ftol)
+    return levenberg_marquardt(
+        theta0, prob, evaluate, scale, max_iter, xtol, ftol, time_budget=time_budget
+    )
 
 
 # ----------------------------------------------------------------------------------
@@ -405,6 +452,21 @@ def process_noise_moments(A: np.ndarray, h: np.ndarray, r: np.ndarray, n_par: in
     return _psd(Q)
 
 
+def _check_budget(time_budget: Any) -> float | None:
+    """A positive number of seconds, or ``None`` (no limit)."""
+    if time_budget is None:
+        return None
+    try:
+        sec = float(time_budget)
+    except (TypeError, ValueError):
+        sec = float("nan")
+    if not (np.isfinite(sec) and sec > 0):
+        raise EstimationError(
+            f"time_budget must be a positive number of seconds or None, got {time_budget!r}"
+        )
+    return sec
+
+
 # ----------------------------------------------------------------------------------
 # the estimator
 # ----------------------------------------------------------------------------------
@@ -424,6 +486,12 @@ class PredictionEstimator(NonlinearEstimator):
         Levenberg-Marquardt iteration cap per pass (default 100).
     xtol : float
         Relative step size at which an iteration counts as converged (default 1e-10).
+    time_budget : float or None
+        Wall-clock seconds for the point fit (default 30; ``None`` for no limit), and
+        as many for all the bootstrap refits of that point fit (their chunks share
+        one budget); rows still iterating when it is spent stop as not converged,
+        and once it is spent the remaining replicates fail at once ("time budget
+        spent").
 
     Notes
     -----
@@ -443,9 +511,14 @@ class PredictionEstimator(NonlinearEstimator):
         frequencies: Any = (0.5, 2.0),
         max_iterations: int = 100,
         xtol: float = 1e-10,
+        time_budget: float | None = 30.0,
         **unknown: Any,
     ) -> None:
-        reject_unknown(self.name, unknown, ("weighting", "frequencies", "max_iterations", "xtol"))
+        reject_unknown(
+            self.name,
+            unknown,
+            ("weighting", "frequencies", "max_iterations", "xtol", "time_budget"),
+        )
         if weighting not in ("noise", "step"):
             raise EstimationError(f"weighting must be 'noise' or 'step', got {weighting!r}")
         freqs = tuple(float(f) for f in frequencies)
@@ -459,8 +532,20 @@ class PredictionEstimator(NonlinearEstimator):
         tol = float(xtol)
         if not (np.isfinite(tol) and 0 < tol < 1):
             raise EstimationError(f"xtol must be a number in (0, 1), got {xtol!r}")
-        super().__init__(weighting=weighting, frequencies=freqs, max_iterations=iters, xtol=tol)
+        budget = _check_budget(time_budget)
+        super().__init__(
+            weighting=weighting,
+            frequencies=freqs,
+            max_iterations=iters,
+            xtol=tol,
+            time_budget=budget,
+        )
         self._reference: dict[str, Any] | None = None
+        #: the budget the running solves draw on (set by fit and fit_values)
+        self._budget: TimeBudget = TimeBudget(None)
+        #: replicates of the last :meth:`fit_values` call, failed ones, and the
+        #: replicates skipped because the time budget was spent (by reason)
+        self.last_failures: dict[str, Any] = {}
 
     # -- units -----------------------------------------------------------------------------
     @staticmethod
@@ -579,7 +664,7 @@ class PredictionEstimator(NonlinearEstimator):
         theta0 = np.concatenate(thetas, axis=0)
         max_iter = self.settings["max_iterations"]
         xtol = self.settings["xtol"]
-        sol = _levenberg_marquardt(theta0, prob, max_iter, xtol)
+        sol = _levenberg_marquardt(theta0, prob, max_iter, xtol, time_budget=self._budget.left())
         cost_by_start = np.where(sol.converged, sol.cost, np.inf).reshape(S, B)
         cost_by_start = np.where(np.isfinite(cost_by_start), cost_by_start, np.inf)
         best = np.argmin(cost_by_start, axis=0)  # (B,)
@@ -607,7 +692,9 @@ class PredictionEstimator(NonlinearEstimator):
             Lc = np.linalg.cholesky(Sig)
             Linv = linalg2.inv(Lc)
             prob2 = _Problem(u0=prob1.u0, u1=prob1.u1, tau=tau, root=root, eq=prob1.eq, Linv=Linv)
-            sol2 = _levenberg_marquardt(theta, prob2, max_iter, xtol)
+            sol2 = _levenberg_marquardt(
+                theta, prob2, max_iter, xtol, time_budget=self._budget.left()
+            )
             converged = converged & sol2.converged
             theta = sol2.theta
             cost = sol2.cost
@@ -650,6 +737,7 @@ class PredictionEstimator(NonlinearEstimator):
         first, h = step_pairs(rec, self.name)
         V = np.asarray(rec.values, dtype=float)[None]
         starts = self._starts(rec, V, eq, first, h)
+        self._budget = TimeBudget(self.settings["time_budget"])
         sol = self._solve_chunk(V, eq, first, h, starts)
         A = sol["A"][0]
         xs = sol["xs"][0]
@@ -704,8 +792,9 @@ class PredictionEstimator(NonlinearEstimator):
         if not conv:
             warns.append(
                 f"the prediction-error fit did not converge within "
-                f"{self.settings['max_iterations']} iterations per pass; the estimate may "
-                "be inaccurate (raise max_iterations or check the data)"
+                f"{self.settings['max_iterations']} iterations per pass or the time budget; "
+                "the estimate may be inaccurate (raise max_iterations or time_budget, or "
+                "check the data)"
             )
         lam = linalg2.eigvals(A)
         wmax = float(np.max(np.abs(lam.imag)))
@@ -738,6 +827,8 @@ class PredictionEstimator(NonlinearEstimator):
             "eq": None if eq is None else eq.copy(),
             "A": A.copy(),
             "xs": xs.copy(),
+            # one budget for all refits of this point fit, however the caller chunks
+            "budget": None,
         }
         extra = {
             "process_noise": Q,
@@ -828,7 +919,9 @@ class PredictionEstimator(NonlinearEstimator):
         the same times, segments and equilibrium setting (otherwise from the point
         fit's own starts); replicates are processed in chunks of bounded memory.
         Replicates that do not converge or are not finite are returned with ``valid =
-        False`` (never redrawn).
+        False`` (never redrawn).  The refits of one point fit share one ``time_budget``
+        across calls; once it is spent, the remaining replicates fail at once
+        (:attr:`last_failures` counts them).
         """
         eq = check_equilibrium(equilibrium)
         V, _ = replicate_values(rec, values)
@@ -846,10 +939,22 @@ class PredictionEstimator(NonlinearEstimator):
         mats = np.full((B, 2, 2), np.nan)
         offs = np.full((B, 2), np.nan)
         valid = np.zeros(B, dtype=bool)
+        if use_ref:
+            assert ref is not None
+            if ref.get("budget") is None:
+                ref["budget"] = TimeBudget(self.settings["time_budget"])
+            self._budget = ref["budget"]
+        else:
+            self._budget = TimeBudget(self.settings["time_budget"])
+        skipped = 0
         n_starts = 1 if use_ref else 2 * (1 + len(self.settings["frequencies"]))
         size = self._chunk(first.size, n_starts)
         for lo in range(0, B, size):
             hi = min(B, lo + size)
+            if self._budget.left() == 0.0:
+                # the budget is spent: the rest fail without a first evaluation
+                skipped = B - lo
+                break
             Vc = V[lo:hi]
             if use_ref:
                 assert ref is not None
@@ -874,4 +979,10 @@ class PredictionEstimator(NonlinearEstimator):
             mats[lo:hi] = np.where(ok[:, None, None], A, np.nan)
             offs[lo:hi] = np.where(ok[:, None], b, np.nan)
             valid[lo:hi] = ok
+        reasons = {STATUS[2]: skipped} if skipped else {}
+        self.last_failures = {
+            "replicates": B,
+            "failed": int(B - valid.sum()),
+            "reasons": reasons,
+        }
         return SystemBatch(matrix=mats, offset=offs, valid=valid)
