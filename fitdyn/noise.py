@@ -8,14 +8,17 @@ one transition per step,
     x_{k+1} - x* = F_k (x_k - x*) + w_k,   F_k = expm(A h_k),   w_k ~ N(0, W(h_k; Q)),
 
 ``W(h; Q) = int_0^h expm(A s) Q expm(A s)^T ds`` (Van Loan 1978; linear in ``Q``,
-so it is precomputed once per step for a basis of ``Q``).  The Kalman filter gives
-the exact Gaussian log-likelihood of ``(Q, R)`` on any steps (Durbin & Koopman,
-*Time Series Analysis by State Space Methods*, 2nd ed., 2012, ch. 4; the first
-sample of a segment starts the filter diffusely, as in
+so it is precomputed once per step for a basis of ``Q``).  The exact Gaussian
+log-likelihood of ``(Q, R)`` on any steps integrates the states out: their precision
+given the samples is block tridiagonal, so one banded Cholesky factorisation per
+parameter vector gives it in O(n) with no Python loop over the samples (see
+:func:`_loglik`; it equals the Kalman filter's prediction-error decomposition, Durbin
+& Koopman, *Time Series Analysis by State Space Methods*, 2nd ed., 2012, ch. 4, with
+the first sample of a segment started diffusely, as in
 :mod:`fitdyn.estimators.statespace`).  :func:`fit_noise` maximises it over the five
 noise parameters with ``A`` and ``x*`` held at a fitted value, by L-BFGS-B with
-central-difference gradients; all the parameter vectors a gradient needs go through
-one filter pass as a batch.
+central-difference gradients (the eleven parameter vectors of one gradient share
+the step matrices).
 
 Why not moments alone: on records where the sensor noise dominates the step
 innovation, the moment estimate of ``Q`` (a difference of two nearly equal
@@ -23,17 +26,8 @@ quantities, :func:`fitdyn.bootstrap.noise_model`) is very noisy, and a parametri
 bootstrap that simulates with a ``Q`` several times too small reports intervals that
 are too narrow.  The likelihood uses the whole autocorrelation of the samples.
 
-The filter runs a Python loop over the time steps, with the segments and the
-parameter vectors as the batch, so its cost grows with the longest segment.  To
-bound it, :func:`fit_noise` cuts segments longer than :data:`PIECE` samples into
-pieces that overlap by one sample and treats the pieces as independent lanes, each
-started diffusely at its first sample: the objective is then the product of the
-exact likelihoods of the pieces, each conditional on its first sample -- a
-composite likelihood (Lindsay, Contemp. Math. 80, 1988, from memory), still
-consistent, which gives up one sample's worth of information per piece (under
-1 %).
-:func:`noise_log_likelihood` is the exact, uncut likelihood.  Records longer than
-:data:`MAX_TRANSITIONS` keep the moment estimate.
+:func:`noise_log_likelihood` is the same likelihood for given noise.  Records
+longer than :data:`MAX_TRANSITIONS` keep the moment estimate.
 """
 
 from __future__ import annotations
@@ -48,8 +42,6 @@ __all__ = ["NoiseFit", "fit_noise", "noise_log_likelihood", "MAX_TRANSITIONS"]
 
 #: transitions above which fit_noise keeps the starting (moment) estimate
 MAX_TRANSITIONS = 200000
-#: samples per piece of a long segment in the fit (see the module notes)
-PIECE = 400
 _LOG2PI = float(np.log(2.0 * np.pi))
 #: bounds of the log-variances in internal units (channel variance 1)
 _LOG_LO, _LOG_HI = np.log(1e-8), np.log(1e3)
@@ -69,13 +61,11 @@ class NoiseFit:
         Sensor covariance ``R`` (diagonal).
     log_likelihood : float
         The maximised objective (NaN when the moment estimate was kept): the exact
-        log-likelihood, or the composite one when long segments were cut.
+        log-likelihood.
     method : str
         ``"likelihood"`` or ``"moments"`` (the start, kept).
     note : str
         One line for the notes.
-    composite : bool
-        Whether long segments were cut into pieces (:data:`PIECE`).
     """
 
     process_noise: np.ndarray
@@ -83,77 +73,46 @@ class NoiseFit:
     log_likelihood: float
     method: str
     note: str
-    composite: bool
 
 
 @dataclass(frozen=True)
 class _Prepared:
-    """Lanes (one per segment) in internal units, and the per-step matrices."""
+    """All samples in internal units, segment after segment, and the step matrices."""
 
-    y1: np.ndarray  # (T, S)
-    y2: np.ndarray  # (T, S)
-    mask: np.ndarray  # (T, S) sample present
-    F: np.ndarray  # (T, S, 2, 2) transition into sample k (identity at k = 0 / padding)
-    W: np.ndarray  # (3, T, S, 2, 2) step covariance of each Q basis matrix
+    y: np.ndarray  # (N, 2) samples of the segments with at least two samples
+    link: np.ndarray  # (K,) index j of each transition j -> j + 1 within a segment
+    F: np.ndarray  # (K, 2, 2) transition matrices
+    W: np.ndarray  # (3, K, 2, 2) step covariance of each Q basis matrix
     sd: np.ndarray  # (2,) channel spreads
-    n_density: int  # samples with a density (all but each segment's first)
+    n_density: int  # transitions (samples with a density: all but each segment's first)
 
 
-def _pieces(rec: Recording, piece: int | None) -> list[tuple[int, int]]:
-    """Sample ranges ``[a, b)`` of the segments, long ones cut into overlapping pieces.
-
-    Consecutive pieces share one sample (the last of one is the first of the next),
-    so no transition is lost.
-    """
-    out = []
-    for a, b in rec.segment_bounds():
-        if b - a < 2:
-            continue
-        if piece is None or b - a <= piece:
-            out.append((a, b))
-            continue
-        n_pieces = int(np.ceil((b - a - 1) / (piece - 1)))
-        cuts = np.linspace(a, b - 1, n_pieces + 1).round().astype(int)
-        out.extend((int(cuts[i]), int(cuts[i + 1]) + 1) for i in range(n_pieces))
-    return out
-
-
-def _prepare(rec: Recording, A: np.ndarray, xs: np.ndarray, piece: int | None = None) -> _Prepared:
+def _prepare(rec: Recording, A: np.ndarray, xs: np.ndarray) -> _Prepared:
     from fitdyn.simulate import discretise
 
-    bounds = _pieces(rec, piece)
-    starts = np.array([a for a, _ in bounds], dtype=np.int64)
+    bounds = [(a, b) for a, b in rec.segment_bounds() if b - a >= 2]
+    if bounds:
+        rows = np.concatenate([np.arange(a, b) for a, b in bounds])
+    else:
+        rows = np.zeros(0, dtype=np.int64)
     lengths = np.array([b - a for a, b in bounds], dtype=np.int64)
-    T = int(lengths.max())
-    k = np.arange(T)[:, None]
-    mask = k < lengths[None, :]
-    index = starts[None, :] + np.minimum(k, lengths[None, :] - 1)
+    ends = np.cumsum(lengths) - 1
+    last = np.zeros(rows.size, dtype=bool)
+    last[ends] = True
+    link = np.flatnonzero(~last)
     V = np.asarray(rec.values, dtype=float)
     sd = V.std(axis=0)
     sd = np.where(sd > 0, sd, 1.0)
-    U = (V - xs) / sd
-    t = np.asarray(rec.times, dtype=float)
-    h = np.zeros((T, mask.shape[1]))
-    h[1:] = np.where(mask[1:], t[index[1:]] - t[index[:-1]], 0.0)
+    y = (V[rows] - xs) / sd
+    t = np.asarray(rec.times, dtype=float)[rows]
+    h = t[link + 1] - t[link]
     A_i = A * sd[None, :] / sd[:, None]  # S^-1 A S with S = diag(sd)
-    flat = h.reshape(-1)
     Ws = []
-    F = None
+    F = np.zeros((0, 2, 2))
     for E in _BASIS:
-        F_, C = discretise(A_i, flat, E)
-        F = F_ if F is None else F
-        Ws.append(C.reshape(T, -1, 2, 2))
-    assert F is not None
-    y = np.where(mask[..., None], U[index], 0.0)
-    return _Prepared(
-        y1=y[..., 0],
-        y2=y[..., 1],
-        mask=mask,
-        F=F.reshape(T, -1, 2, 2),
-        W=np.stack(Ws),
-        sd=sd,
-        n_density=int((lengths - 1).sum()),
-    )
+        F, C = discretise(A_i, h, E)
+        Ws.append(C)
+    return _Prepared(y=y, link=link, F=F, W=np.stack(Ws), sd=sd, n_density=int(link.size))
 
 
 def _unpack(theta: np.ndarray) -> tuple[np.ndarray, ...]:
@@ -176,65 +135,77 @@ def _theta(Q: np.ndarray, R: np.ndarray, floor: float = 1e-6) -> np.ndarray:
 def _loglik(prep: _Prepared, theta: np.ndarray) -> np.ndarray:
     """Log-likelihood (internal units) of parameter rows ``theta`` (P, 5).
 
-    Everything that does not depend on the filter's state (transition entries, step
-    covariances for these parameters) is formed for all steps before the loop, which
-    then does only the recursion, in scalar 2x2 arithmetic on (P, S) arrays.
+    The states ``x_0..x_n`` of each segment and the samples are jointly Gaussian.
+    Integrating the states out, with a flat prior on each segment's first state
+    (the diffuse start ``x_0 | y_0 ~ N(y_0, R)``), gives
+
+        log p = -n log(2 pi) - 1/2 [N log|R| + sum_k log|W_k| + log|H|
+                                    + y' R^-1 y - b' H^-1 b]
+
+    for ``N`` samples and ``n`` transitions, where ``H`` is the precision of the
+    states given the samples: ``R^-1`` on every diagonal block plus, for each
+    transition ``x_{k+1} = F_k x_k + w_k``, ``F_k' W_k^-1 F_k`` on block ``(k, k)``,
+    ``W_k^-1`` on block ``(k+1, k+1)`` and ``-W_k^-1 F_k`` on block ``(k+1, k)``
+    (a Gaussian Markov chain; Rue & Held, *Gaussian Markov Random Fields*, 2005,
+    ch. 2, from memory), and ``b = R^-1 y``.  ``H`` is block tridiagonal: with the
+    two channels of each sample interleaved it is a band of half-width 3, whose
+    Cholesky factor (LAPACK ``pbtrf`` through :func:`scipy.linalg.cholesky_banded`)
+    costs O(N) per parameter row with no Python loop over the samples.  This is the
+    same likelihood as the Kalman filter's prediction-error decomposition
+    (``tests/test_noise.py`` checks it against the dense Gaussian density).
     """
-    q11, q12, q22, r1, r2 = (v[:, None] for v in _unpack(theta))
-    # Q in the basis diag(1,0), diag(0,1), ones: weights q11 - q12, q22 - q12, q12
-    c = np.stack([q11 - q12, q22 - q12, q12])  # (3, P, 1)
-    W = prep.W  # (3, T, S, 2, 2)
-    w11 = np.einsum("jps,jts->tps", c, W[..., 0, 0])
-    w12 = np.einsum("jps,jts->tps", c, W[..., 0, 1])
-    w22 = np.einsum("jps,jts->tps", c, W[..., 1, 1])
-    F = prep.F
-    f11, f12, f21, f22 = (F[:, None, :, i, j] for i, j in ((0, 0), (0, 1), (1, 0), (1, 1)))
-    y1, y2 = prep.y1[:, None, :], prep.y2[:, None, :]
-    mask = prep.mask[:, None, :]
+    from scipy.linalg import cho_solve_banded, cholesky_banded
+
+    q11, q12, q22, r1, r2 = _unpack(theta)
     P = theta.shape[0]
-    S = prep.y1.shape[1]
-    # diffuse start: the filtered first state is the first sample, covariance R
-    m1 = np.broadcast_to(y1[0], (P, S))
-    m2 = np.broadcast_to(y2[0], (P, S))
-    p11 = np.broadcast_to(r1, (P, S))
-    p12 = np.zeros((P, S))
-    p22 = np.broadcast_to(r2, (P, S))
-    terms = np.zeros((P, S))
-    for k in range(1, prep.y1.shape[0]):
-        a11, a12, a21, a22 = f11[k], f12[k], f21[k], f22[k]
-        # predict
-        x1 = a11 * m1 + a12 * m2
-        x2 = a21 * m1 + a22 * m2
-        t11 = a11 * p11 + a12 * p12
-        t12 = a11 * p12 + a12 * p22
-        t21 = a21 * p11 + a22 * p12
-        t22 = a21 * p12 + a22 * p22
-        b11 = t11 * a11 + t12 * a12 + w11[k]
-        b12 = t11 * a21 + t12 * a22 + w12[k]
-        b22 = t21 * a21 + t22 * a22 + w22[k]
-        # innovation and its covariance
-        e1 = y1[k] - x1
-        e2 = y2[k] - x2
-        s11 = b11 + r1
-        s22 = b22 + r2
-        det = s11 * s22 - b12 * b12
-        i11 = s22 / det
-        i12 = -b12 / det
-        i22 = s11 / det
-        g1 = i11 * e1 + i12 * e2
-        g2 = i12 * e1 + i22 * e2
-        mk = mask[k]
-        terms += np.where(mk, np.log(det) + e1 * g1 + e2 * g2, 0.0)
-        # update: m + P S^-1 e, and P_{k|k} = P_{k|k-1} S^-1 R (no cancellation)
-        m1 = np.where(mk, x1 + b11 * g1 + b12 * g2, m1)
-        m2 = np.where(mk, x2 + b12 * g1 + b22 * g2, m2)
-        k11 = b11 * i11 + b12 * i12
-        k12 = b11 * i12 + b12 * i22
-        k22 = b12 * i12 + b22 * i22
-        p11 = np.where(mk, k11 * r1, p11)
-        p12 = np.where(mk, 0.5 * (k12 * r2 + (b12 * i11 + b22 * i12) * r1), p12)
-        p22 = np.where(mk, k22 * r2, p22)
-    ll = -0.5 * np.sum(terms, axis=1) - prep.n_density * _LOG2PI
+    y = prep.y
+    N = y.shape[0]
+    k = prep.link
+    # step covariances for these parameters: Q = (q11 - q12) E1 + (q22 - q12) E2 + q12 E3
+    c = np.stack([q11 - q12, q22 - q12, q12])  # (3, P)
+    W = prep.W
+    w11 = c.T @ W[:, :, 0, 0]  # (P, K)
+    w12 = c.T @ W[:, :, 0, 1]
+    w22 = c.T @ W[:, :, 1, 1]
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        detw = w11 * w22 - w12 * w12
+        i11, i12, i22 = w22 / detw, -w12 / detw, w11 / detw  # W^-1
+        f11, f12, f21, f22 = (prep.F[None, :, i, j] for i, j in ((0, 0), (0, 1), (1, 0), (1, 1)))
+        # G = W^-1 F and F' W^-1 F = F' G
+        g11 = i11 * f11 + i12 * f21
+        g12 = i11 * f12 + i12 * f22
+        g21 = i12 * f11 + i22 * f21
+        g22 = i12 * f12 + i22 * f22
+        # lower band of H (P, 4, 2N): row d holds H[i + d, i]
+        ab = np.zeros((P, 4, 2 * N))
+        ab[:, 0, 0::2] = (1.0 / r1)[:, None]
+        ab[:, 0, 1::2] = (1.0 / r2)[:, None]
+        ab[:, 0, 2 * k] += f11 * g11 + f21 * g21
+        ab[:, 1, 2 * k] += f11 * g12 + f21 * g22
+        ab[:, 0, 2 * k + 1] += f12 * g12 + f22 * g22
+        ab[:, 0, 2 * k + 2] += i11
+        ab[:, 1, 2 * k + 2] += i12
+        ab[:, 0, 2 * k + 3] += i22
+        ab[:, 2, 2 * k] = -g11  # H[x_{k+1}(1), x_k(1)]
+        ab[:, 3, 2 * k] = -g21  # H[x_{k+1}(2), x_k(1)]
+        ab[:, 1, 2 * k + 1] = -g12  # H[x_{k+1}(1), x_k(2)]
+        ab[:, 2, 2 * k + 1] = -g22  # H[x_{k+1}(2), x_k(2)]
+        b = np.empty((P, 2 * N))
+        b[:, 0::2] = y[None, :, 0] / r1[:, None]
+        b[:, 1::2] = y[None, :, 1] / r2[:, None]
+        yRy = np.sum(y[:, 0] ** 2) / r1 + np.sum(y[:, 1] ** 2) / r2
+        base = N * np.log(r1 * r2) + np.sum(np.log(detw), axis=1) + yRy
+    ll = np.full(P, -np.inf)
+    for p in range(P):  # the parameter rows of one gradient (at most 11), not samples
+        if not (np.isfinite(base[p]) and np.all(detw[p] > 0) and np.all(np.isfinite(ab[p]))):
+            continue
+        try:
+            L = cholesky_banded(ab[p], lower=True, check_finite=False)
+        except np.linalg.LinAlgError:
+            continue
+        z = cho_solve_banded((L, True), b[p], check_finite=False)
+        logdet = 2.0 * np.sum(np.log(L[0]))
+        ll[p] = -0.5 * (base[p] + logdet - b[p] @ z) - prep.n_density * _LOG2PI
     return np.where(np.isfinite(ll), ll, -np.inf)
 
 
@@ -305,7 +276,7 @@ def fit_noise(
     n_trans = sum(b - a - 1 for a, b in rec.segment_bounds() if b - a >= 2)
 
     def kept(why: str) -> NoiseFit:
-        return NoiseFit(Q0, R0, float("nan"), "moments", f"noise by moments ({why})", False)
+        return NoiseFit(Q0, R0, float("nan"), "moments", f"noise by moments ({why})")
 
     if n_trans < 8:
         return kept("too few transitions for the likelihood")
@@ -315,7 +286,7 @@ def fit_noise(
     xs = np.asarray(equilibrium, dtype=float)
     if not (np.all(np.isfinite(A)) and np.all(np.isfinite(xs))):
         return kept("no finite drift")
-    prep = _prepare(rec, A, xs, PIECE)
+    prep = _prepare(rec, A, xs)
     sd = prep.sd
     Qi = Q0 / np.outer(sd, sd)
     Ri = R0 / np.outer(sd, sd)
@@ -350,11 +321,10 @@ def fit_noise(
         return kept("the likelihood search failed")
     Q, R = _to_original(res.x, sd)
     ll = -float(res.fun) - prep.n_density * float(np.sum(np.log(sd)))
-    composite = len(_pieces(rec, PIECE)) > len(_pieces(rec, None))
-    how = "; long segments in pieces, composite likelihood" if composite else ""
     note = (
-        "noise by maximum likelihood (Kalman filter on the actual steps, drift held at "
-        f"the estimate{how}): Q = {np.round(Q, 6).tolist()}, R = {np.round(R, 6).tolist()}"
+        "noise by maximum likelihood (exact Gaussian likelihood on the actual steps, "
+        f"drift held at the estimate): Q = {np.round(Q, 6).tolist()}, "
+        f"R = {np.round(R, 6).tolist()}"
         + ("" if res.success else f" (search stopped: {res.message})")
     )
-    return NoiseFit(Q, R, ll, "likelihood", note, composite)
+    return NoiseFit(Q, R, ll, "likelihood", note)

@@ -132,3 +132,44 @@ def test_cost_tolerance(ftol):
     tight = levenberg_marquardt(start, prob, _decay, np.sum(prob.y**2, axis=1), 200, 1e-14, 1e-24)
     assert sol.converged.all()
     assert np.all(sol.cost <= tight.cost * (1 + 1e-8))
+
+
+@dataclass
+class _Rough:
+    n: int
+
+    def take(self, idx):
+        return _Rough(len(idx))
+
+
+def _rough(theta, prob, jacobian):
+    """Two residuals per parameter, theta - 1 plus and minus a deterministic jitter of
+    size 1e-9 that the Jacobian does not know (a rounding floor): no step brings the
+    cost below about 1e-18, so the damping runs away there."""
+    e = np.concatenate(
+        [theta - 1.0 + 1e-9 * np.sin(1e7 * theta), theta - 1.0 - 1e-9 * np.cos(3e7 * theta)],
+        axis=1,
+    )
+    P = theta.shape[1]
+    J = np.broadcast_to(np.vstack([np.eye(P), np.eye(P)]), (theta.shape[0], 2 * P, P))
+    return e, J.copy()
+
+
+def test_settle_ends_rows_stuck_at_their_floor_and_damping_starts_the_steps():
+    start = np.array([[3.0, -2.0], [0.5, 4.0]])
+    scale = np.ones(2)
+    # common practice, no source: a cost below the problem's own precision is solved
+    stuck = levenberg_marquardt(start, _Rough(2), _rough, scale, 200, 1e-16)
+    assert (stuck.status == 3).all()  # the damping ran away at the floor
+    done = levenberg_marquardt(start, _Rough(2), _rough, scale, 200, 1e-16, settle=1e-12)
+    assert done.converged.all() and (done.status == 0).all()
+    assert (done.iterations < stuck.iterations).all()
+    np.testing.assert_allclose(done.theta, 1.0, atol=1e-8)
+    # a smaller starting damping takes nearly Gauss-Newton steps: the same minimum
+    # of the decay problems (as scipy's reference above), in no more iterations
+    prob, start = _problems(B=6, seed=5)
+    sc = np.sum(prob.y**2, axis=1)
+    slow = levenberg_marquardt(start, prob, _decay, sc, 200, 1e-12, 1e-14)
+    fast = levenberg_marquardt(start, prob, _decay, sc, 200, 1e-12, 1e-14, damping=1e-8)
+    np.testing.assert_allclose(fast.theta, slow.theta, rtol=1e-7, atol=1e-9)
+    assert fast.iterations.sum() <= slow.iterations.sum()

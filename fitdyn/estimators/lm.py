@@ -148,6 +148,8 @@ def levenberg_marquardt(
     ftol: float = 1e-20,
     time_budget: float | None = None,
     stall_tol: float = 0.0,
+    damping: float = 1e-3,
+    settle: float = 0.0,
 ) -> Solution:
     """Batched Levenberg-Marquardt with per-row damping, convergence and failure.
 
@@ -181,6 +183,15 @@ def levenberg_marquardt(
         Gauss-Newton step predicts a relative decrease below ``stall_tol`` has
         reached the rounding level of its cost and counts as converged (default 0:
         never).
+    damping : float
+        Starting damping, relative to the diagonal of ``J'J`` (default 1e-3; a
+        smaller one suits starts close to the solution, such as bootstrap refits
+        started from the point estimate: nearly Gauss-Newton steps from the first).
+    settle : float
+        A row whose step is rejected while its cost is at most ``settle * scale``
+        has converged: its residuals are already as small as the problem asks
+        (e.g. equations solved to their rounding level), and raising the damping
+        until it runs away would only cost iterations (default 0: never).
 
     Returns
     -------
@@ -197,7 +208,7 @@ def levenberg_marquardt(
     ef = np.array(e.reshape(B, -1))
     cost = sum_of_squares(ef)
     scale = np.broadcast_to(np.asarray(scale, dtype=float), (B,))
-    lam = np.full(B, 1e-3)
+    lam = np.full(B, float(damping))
     nu = np.full(B, 2.0)
     converged = np.zeros(B, dtype=bool)
     status = np.ones(B, dtype=int)
@@ -270,7 +281,8 @@ def levenberg_marquardt(
         shrink = np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0.0, 1.0) - 1.0) ** 3)
         lam[act] = np.where(accept, np.maximum(lam[act] * shrink, 1e-12), lam[act] * nu[act])
         nu[act] = np.where(accept, 2.0, nu[act] * 2.0)
-        converged[act] = (done & accept) | (accept & tiny & ~zone) | flat
+        stuck = ~accept & (cost_old <= settle * scale[act])
+        converged[act] = (done & accept) | (accept & tiny & ~zone) | flat | stuck
         runaway = (lam[act] > _LAM_MAX) & ~converged[act]
         at_rounding = runaway & np.isfinite(pred) & (pred <= stall_tol * cost[act])
         converged[act] |= at_rounding
