@@ -34,12 +34,13 @@ a failed fit, never redrawn
 (``extra["did_not_converge"]`` and :attr:`TrajectoryEstimator.last_failures` give the
 counts).
 
-lmfit no longer solves anything here: the loop of lmfit fits it replaced, one
-replicate at a time, was 35 to 50 times slower than the batched solve on 1,000
-bootstrap replicates of a 200-sample recording (``benchmarks/trajectory_speed.py``)
-and could not share its work across replicates.  It stays for one thing, the text of the point fit's
-parameter report (``extra["lmfit_report"]``: values, standard errors and
-correlations in its familiar layout), which costs about a millisecond per point fit.
+lmfit is not used here: the loop of lmfit fits the batched solve replaced, one
+replicate at a time, was 44 to 60 times slower on 1,000 bootstrap replicates of a
+200-sample recording (``benchmarks/trajectory_speed.py``, which keeps it as its
+reference) and could not share its work across replicates; it was then kept to lay
+out the point fit's parameter report, but importing it took over a second in every
+new process (longer than the fit), so ``extra["parameter_report"]`` (values,
+standard errors, large correlations) is now written here.
 
 Details
 -------
@@ -1149,42 +1150,50 @@ class TrajectoryEstimator(NonlinearEstimator):
         return 0.5 * (cov6 + cov6.T), 0.5 * (covf + covf.T), warns, stats
 
     def _report(self, sol: dict[str, Any], covf: np.ndarray | None, stats: dict) -> str:
-        """The parameters in the recording's units, laid out by lmfit's report."""
-        import lmfit
+        """The point fit's parameters in the recording's units, as plain text.
 
+        Values, standard errors (from the asymptotic covariance) and the notable
+        correlations, after a few lines on the solve and its fit statistics.
+        """
         theta, prob, kind = sol["theta"], sol["prob"], sol["kind"]
         o = self._original(theta, prob, kind)
         names = _names(prob.n_traj, kind)
         vals = np.concatenate(
             [o["A"].ravel(), o["v"] if kind != "known" else np.zeros(0), o["x0"].ravel()]
         )
-        params = lmfit.Parameters()
-        for nm, val in zip(names, vals, strict=True):
-            params.add(nm, value=float(val))
-        if covf is not None:
-            sd = np.sqrt(np.clip(np.diag(covf), 0.0, None))
-            for i, nm in enumerate(names):
-                par = params[nm]
-                par.stderr = float(sd[i])
-                par.correl = {
-                    names[j]: float(covf[i, j] / (sd[i] * sd[j]))
-                    for j in range(len(names))
-                    if j != i and sd[i] > 0 and sd[j] > 0
-                }
-        head = [
-            "[[Fit Statistics]] (weighted residuals in internal scaled units)",
-            "    # fitting method   = Levenberg-Marquardt (batched, closed-form Jacobian)",
-            f"    # iterations       = {sol['iterations']}",
-            f"    # data points      = {stats['ndata']}",
-            f"    # variables        = {stats['nvarys']}",
-            f"    chi-square         = {stats['chisqr']:.6g}",
-            f"    reduced chi-square = {stats['redchi']:.6g}",
-            f"    success            = {sol['converged']} ({STATUS[sol['status']]})",
-            "[[Parameters]] (recording units; a = system matrix, "
-            + ("xs = equilibrium" if kind == "equilibrium" else "b = offset")
-            + ", x0_r_j = starting state of trajectory r, channel j)",
+        what = "xs = equilibrium" if kind == "equilibrium" else "b = offset"
+        lines = [
+            "output-error fit: batched Levenberg-Marquardt, closed-form Jacobian, "
+            f"{sol['iterations']} iterations, "
+            + ("converged" if sol["converged"] else f"not converged ({STATUS[sol['status']]})"),
+            f"  {stats['ndata']} values, {stats['nvarys']} parameters; weighted sum of squares "
+            f"{stats['chisqr']:.6g} (per degree of freedom {stats['redchi']:.6g}, internal "
+            "scaled units)",
+            f"parameters (recording units; a = system matrix, {what}, x0_r_j = starting "
+            "state of trajectory r, channel j):",
         ]
-        return "\n".join(head) + "\n" + lmfit.fit_report(params, show_correl=True)
+        sd = None if covf is None else np.sqrt(np.clip(np.diag(covf), 0.0, None))
+        width = max(len(n) for n in names)
+        for k, (nm, val) in enumerate(zip(names, vals, strict=True)):
+            row = f"  {nm:<{width}}  {val: .6g}"
+            if sd is not None:
+                rel = f" ({100 * sd[k] / abs(val):.3g} %)" if val != 0 else ""
+                row += f"  +/- {sd[k]:.3g}{rel}"
+            lines.append(row)
+        if covf is not None and sd is not None:
+            pairs = []
+            for a in range(len(names)):
+                for b in range(a + 1, len(names)):
+                    if sd[a] > 0 and sd[b] > 0:
+                        r = float(covf[a, b] / (sd[a] * sd[b]))
+                        if abs(r) >= 0.5:
+                            pairs.append((abs(r), f"  {names[a]} with {names[b]}: {r:+.3f}"))
+            if pairs:
+                lines.append("correlations of at least 0.5 in size, largest first:")
+                lines.extend(t for _, t in sorted(pairs, key=lambda p: -p[0]))
+        else:
+            lines.append("  (no standard errors: the asymptotic covariance is not available)")
+        return "\n".join(lines)
 
     # -- protocol -----------------------------------------------------------------------------
     def fit(self, rec: Recording, equilibrium: np.ndarray | None = None) -> Estimate:
@@ -1263,7 +1272,7 @@ class TrajectoryEstimator(NonlinearEstimator):
         }
         extra = {
             "initial_states": o["x0"],
-            "lmfit_report": self._report(sol, covf, stats),
+            "parameter_report": self._report(sol, covf, stats),
             "iterations": int(sol["iterations"]),
             "starts": sol["tried"],
             "parameterisation": "offset" if kind == "offset" else "equilibrium",
