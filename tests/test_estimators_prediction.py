@@ -421,3 +421,62 @@ def test_time_budget_is_shared_by_all_refits_of_one_point_fit(monkeypatch):
     # a new point fit starts a new budget
     est.fit(rec)
     assert est.fit_values(rec, V).valid.all()
+
+
+@pytest.mark.parametrize("A", [A_SPIRAL, A_NODE, np.array([[0.4, 1.0], [0.3, -0.2]])])
+def test_process_noise_moments_inverts_the_exact_step_covariances(A):
+    # The step covariance W(h; Q) = int_0^h expm(A s) Q expm(A s)^T ds from Van Loan's
+    # 4x4 block exponential (Van Loan, IEEE Trans. Autom. Control 23, 1978) with
+    # scipy.linalg.expm, summed over irregular steps; errors whose sum of squares is
+    # exactly that sum must give Q back (a saddle included: no Lyapunov form needed).
+    from fitdyn.estimators.prediction import process_noise_moments
+
+    Q = np.array([[0.3, 0.05], [0.05, 0.2]])
+    h = np.random.default_rng(3).uniform(0.01, 0.8, 60)
+    S = np.zeros((2, 2))
+    for hk in h:
+        blk = np.zeros((4, 4))
+        blk[:2, :2], blk[:2, 2:], blk[2:, 2:] = -A, Q, A.T
+        E = expm(blk * hk)
+        S += E[2:, 2:].T @ E[:2, 2:]
+    m, n_par = h.size, 6
+    target = S / (m / (m - n_par / 2.0))  # undo the degrees-of-freedom correction
+    r = np.zeros((m, 2))
+    r[:2] = np.linalg.cholesky(target).T
+    np.testing.assert_allclose(process_noise_moments(A, h, r, n_par), Q, rtol=1e-9, atol=1e-12)
+
+
+def test_nearly_singular_fit_is_the_least_squares_minimum_of_scipy():
+    # A slow mode (eigenvalues about -1.1 and -0.002) on irregular steps with process
+    # noise: the equilibrium is barely fixed by the data.  The fit (x* eliminated by
+    # variable projection) must be the minimum of the weighted one-step objective
+    # sum_k |D^-1 (x_{k+1} - x* - expm(A h_k)(x_k - x*))|^2 / h_k (D: the channels'
+    # standard deviations, the "step" weighting) that
+    # scipy.optimize.least_squares (MINPACK's lmder, a reference library) reaches
+    # from the same point with scipy.linalg.expm, and it must take few iterations.
+    from scipy.optimize import least_squares
+
+    from fitdyn.simulate import simulate
+
+    A = np.array([[-1.0, 0.5], [0.196, -0.1]])
+    rng = np.random.default_rng(31)
+    t = np.sort(rng.uniform(0.0, 40.0, 200))
+    t[0] = 0.0
+    rec = simulate(A, X_STAR, [4.0, 1.0], t, process_noise=np.diag([0.05, 0.05]), seed=rng)
+    e = PredictionEstimator(weighting="step").fit(rec)
+    first, h = step_pairs(rec)
+    y0, y1 = rec.values[first], rec.values[first + 1]
+    sd = rec.values.std(axis=0)
+
+    def resid(th):
+        Ah, xs = th[:4].reshape(2, 2), th[4:]
+        F = expm(Ah[None] * h[:, None, None])
+        r = (y1 - xs - np.einsum("kij,kj->ki", F, y0 - xs)) / sd
+        return (r / np.sqrt(h)[:, None]).ravel()
+
+    th = np.concatenate([e.matrix.ravel(), e.equilibrium])
+    ref = least_squares(resid, th, method="lm", xtol=1e-15, ftol=1e-15, gtol=1e-15)
+    cost, best = np.sum(resid(th) ** 2), 2 * ref.cost
+    assert cost <= best * (1 + 1e-9)
+    np.testing.assert_allclose(e.matrix, ref.x[:4].reshape(2, 2), rtol=1e-5, atol=1e-7)
+    assert e.extra["iterations"] <= 60
