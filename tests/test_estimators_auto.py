@@ -269,3 +269,35 @@ def test_kept_trajectory_fit_bootstraps_with_the_users_budget():
     V = rec.values[None] + 0.05 * np.random.default_rng(0).standard_normal((4, *rec.values.shape))
     assert estimator.fit_values(rec, V).valid.all()
     assert estimator._reference is not None
+
+
+def test_diagnostic_fit_skips_its_weighting_only_when_the_verdict_cannot_change():
+    # Measurement-noise data from scipy's general ODE solver (solve_ivp, a reference
+    # library): the screen must not touch the fit.  Process-noise data: the rounds
+    # are skipped and the residuals stay far from white, so auto's choice is the same.
+    from scipy.integrate import solve_ivp
+
+    from fitdyn.estimators.auto import AUTO_SETTINGS, SCREEN_MARGIN
+    from fitdyn.estimators.trajectory import TrajectoryEstimator
+
+    sol = solve_ivp(lambda t, x: A @ (x - X_STAR), (0, 12), [4.0, 1.0], t_eval=T,
+                    rtol=1e-10, atol=1e-12)  # fmt: skip
+    noisy = sol.y.T + 0.1 * np.random.default_rng(3).standard_normal(sol.y.T.shape)
+    meas = fitdyn.read((T, noisy))
+    limit = AUTO_SETTINGS["white_lag1"] + SCREEN_MARGIN
+    plain = TrajectoryEstimator().fit(meas)
+    screen = TrajectoryEstimator()
+    screen._screen_lag1 = limit
+    e = screen.fit(meas)
+    assert not e.extra["screened"]
+    np.testing.assert_array_equal(e.matrix, plain.matrix)
+    proc = fitdyn.simulate(A, X_STAR, [4.0, 1.0], T, process_noise=0.3, seed=4)
+    full = TrajectoryEstimator().fit(proc)
+    screen = TrajectoryEstimator()
+    screen._screen_lag1 = limit
+    quick = screen.fit(proc)
+    assert quick.extra["screened"] and not full.extra["screened"]
+    assert quick.extra["iterations"] < full.extra["iterations"]
+    for est in (quick, full):
+        assert residual_lag1(est.residuals, proc.segment) > AUTO_SETTINGS["white_lag1"]
+    assert choose_and_fit(proc)[0].method != "trajectory"
