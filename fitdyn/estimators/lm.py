@@ -187,6 +187,7 @@ def levenberg_marquardt(
         Starting damping, relative to the diagonal of ``J'J`` (default 1e-3; a
         smaller one suits starts close to the solution, such as bootstrap refits
         started from the point estimate: nearly Gauss-Newton steps from the first).
+        The damping shrinks after successful steps down to ``min(1e-12, damping)``.
     settle : float
         A row whose step is rejected while its cost is at most ``settle * scale``
         has converged: its residuals are already as small as the problem asks
@@ -209,6 +210,7 @@ def levenberg_marquardt(
     cost = sum_of_squares(ef)
     scale = np.broadcast_to(np.asarray(scale, dtype=float), (B,))
     lam = np.full(B, float(damping))
+    floor = min(1e-12, float(damping))  # the damping never shrinks below this
     nu = np.full(B, 2.0)
     converged = np.zeros(B, dtype=bool)
     status = np.ones(B, dtype=int)
@@ -279,7 +281,7 @@ def levenberg_marquardt(
             pred_d = -np.einsum("bp,bp->b", delta, 2.0 * grad + np.einsum("bpq,bq->bp", JtJ, delta))
             rho = np.where(pred_d > 0, (cost_old - c_new) / pred_d, 0.0)
         shrink = np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0.0, 1.0) - 1.0) ** 3)
-        lam[act] = np.where(accept, np.maximum(lam[act] * shrink, 1e-12), lam[act] * nu[act])
+        lam[act] = np.where(accept, np.maximum(lam[act] * shrink, floor), lam[act] * nu[act])
         nu[act] = np.where(accept, 2.0, nu[act] * 2.0)
         stuck = ~accept & (cost_old <= settle * scale[act])
         converged[act] = (done & accept) | (accept & tiny & ~zone) | flat | stuck
