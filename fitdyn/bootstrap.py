@@ -92,7 +92,7 @@ import numpy as np
 
 from fitdyn import linalg2
 from fitdyn.classify import GENERIC, LABELS, classify_codes
-from fitdyn.errors import EstimationError, FitdynError
+from fitdyn.errors import EstimationError, FitdynError, InputError
 from fitdyn.estimators.base import (
     Estimate,
     Estimator,
@@ -1429,16 +1429,33 @@ class _Runner:
             R = np.asarray(plan.estimate.residual_cov, dtype=float)
         times = [t for _, t, _ in rec.trajectories()]
         x0 = _initial_states(plan, rec)
-        batch = simulate(
-            A,
-            eq,
-            x0,
-            times,
-            process_noise=None if Q is None or not np.any(Q) else Q,
-            measurement_cov=R if np.any(R) else None,
-            seed=rng,
-            replicates=size,
-        )
+        try:
+            batch = simulate(
+                A,
+                eq,
+                x0,
+                times,
+                process_noise=None if Q is None or not np.any(Q) else Q,
+                measurement_cov=R if np.any(R) else None,
+                seed=rng,
+                replicates=size,
+                overflow="nan",
+            )
+        except InputError as exc:
+            # a model too explosive to simulate over these steps (e.g. a bias-corrected
+            # model far from the point estimate): every replicate fails, and is counted
+            note = f"the model to simulate from cannot be simulated on these times ({exc})"
+            if note not in self.notes:
+                self.notes.append(note)
+            return np.full((size, rec.n_samples, 2), np.nan)
+        lost = int(np.sum(np.isnan(batch.values[:, 0, 0])))
+        if lost:
+            note = (
+                "replicates simulated from the model overflowed (a model too explosive "
+                "for the recording's span); they count as failed"
+            )
+            if note not in self.notes:
+                self.notes.append(note)
         return batch.values
 
     def _cases(self, rng: np.random.Generator, size: int) -> np.ndarray:

@@ -383,6 +383,7 @@ def simulate(
     time_unit: str | None = None,
     units: Sequence[str | None] = (None, None),
     method: str = "van-loan",
+    overflow: str = "raise",
 ) -> Recording | SimulatedBatch:
     """Simulate ``dx = A (x - x*) dt + Q^{1/2} dW`` sampled with measurement noise.
 
@@ -431,6 +432,10 @@ def simulate(
         Units of the channels, stored in the result.
     method : {"van-loan", "lyapunov"}
         How ``Cov(w)`` is computed; see :func:`discretise`.
+    overflow : {"raise", "nan"}
+        What a value that overflows does: raise :class:`~fitdyn.errors.InputError`
+        (default), or, with ``replicates``, make its whole replicate NaN and keep the
+        others (the bootstrap then counts that replicate as failed).
 
     Returns
     -------
@@ -449,6 +454,8 @@ def simulate(
     (chunk ``replicates`` for very large batches).  Simulated data show what the
     linear model does, not what a real system will do.
     """
+    if overflow not in ("raise", "nan"):
+        raise InputError(f"overflow must be 'raise' or 'nan', got {overflow!r}")
     A = _matrix(matrix)
     xs = np.zeros(2) if equilibrium is None else _vector2(equilibrium, "equilibrium")
     start = np.asarray(x0, dtype=float)
@@ -522,10 +529,14 @@ def simulate(
         e = rng.standard_normal(values.shape)
         values += e[..., :1] * S_m[:, 0] + e[..., 1:] * S_m[:, 1]
     if not np.all(np.isfinite(values)):
-        raise InputError(
-            "simulated values overflow (an unstable matrix over a long time span); "
-            "shorten the times or start closer to the equilibrium"
-        )
+        if overflow != "nan" or replicates is None:
+            raise InputError(
+                "simulated values overflow (an unstable matrix over a long time span); "
+                "shorten the times or start closer to the equilibrium"
+            )
+        # a replicate with an overflowing value is all NaN: whoever refits it counts
+        # it as failed (the bootstrap), the others are kept
+        values[~np.all(np.isfinite(values), axis=(1, 2))] = np.nan
 
     t_all = np.concatenate(t_list)
     traj = np.repeat(np.arange(R), lengths)

@@ -564,3 +564,32 @@ def test_parametric_uses_the_noise_an_estimator_fitted():
     assert not any("process noise Q" in n for n in plain.notes)
     spread = lambda v: float(np.nanstd(np.trace(v.matrices, axis1=1, axis2=2)))  # noqa: E731
     assert spread(u) > 1.5 * spread(plain)
+
+
+def test_a_model_too_explosive_to_simulate_fails_its_replicates_instead_of_raising():
+    # A parametric bootstrap from a model that overflows over the recording's span
+    # (as a bias-corrected model far from its point estimate can): the replicates
+    # are counted as failed and said why, the call does not raise.
+    rng = np.random.default_rng(5)
+    t = np.sort(rng.uniform(0.0, 40.0, 150))
+    rec = simulate(np.array([[-0.3, 1.0], [-1.0, -0.3]]), [1.0, 2.0], [3.0, 0.0], t,
+                   process_noise=0.02, seed=6)  # fmt: skip
+    est = get_estimator("prediction")
+    e = est.fit(rec)
+    wild = np.array([[40.0, 0.0], [0.0, 30.0]])  # e^(40 * 40) overflows
+    bad = replace(e, matrix=wild, offset=-wild @ np.array([1.0, 2.0]))
+    u = bootstrap(rec, est, bad, replicates=20, scheme="parametric", bias_correction=False,
+                  seed=1, quiet=True)  # fmt: skip
+    assert u.failed_replicates == 20
+    assert any("overflow" in n or "cannot be simulated" in n for n in u.notes)
+    # a step so long that the step's noise covariance itself overflows: the
+    # simulation cannot even start; again every replicate fails, with the reason
+    t2 = np.r_[t, 55.0]
+    rec2 = simulate(np.array([[-0.3, 1.0], [-1.0, -0.3]]), [1.0, 2.0], [3.0, 0.0], t2,
+                    process_noise=0.02, seed=6)  # fmt: skip
+    e2 = est.fit(rec2)
+    bad2 = replace(e2, matrix=wild, offset=-wild @ np.array([1.0, 2.0]))
+    u2 = bootstrap(rec2, est, bad2, replicates=10, scheme="parametric", bias_correction=False,
+                   seed=1, quiet=True)  # fmt: skip
+    assert u2.failed_replicates == 10
+    assert any("cannot be simulated" in n for n in u2.notes)

@@ -354,3 +354,21 @@ def test_write_csv_round_trip_through_reader(tmp_path):
     assert back.channels == ("angle", "rate")
     np.testing.assert_allclose(back.values, rec.values, rtol=1e-12)
     np.testing.assert_allclose(back.times, rec.times, rtol=1e-12)
+
+
+def test_overflow_raises_or_fails_only_the_overflowing_replicates():
+    from fitdyn.errors import InputError
+
+    A = np.array([[0.9, 0.0], [0.0, 0.5]])
+    t = np.linspace(0.0, 1000.0, 50)  # e^(0.9 * 1000) overflows double precision
+    with pytest.raises(InputError, match="overflow"):
+        simulate(A, None, [1.0, 1.0], t, replicates=3, seed=1)
+    with pytest.raises(InputError, match="overflow must be"):
+        simulate(A, None, [1.0, 1.0], t, replicates=3, seed=1, overflow="ignore")
+    out = simulate(A, None, [1.0, 1.0], t, replicates=3, seed=1, overflow="nan")
+    assert np.isnan(out.values).all()  # every replicate overflows: each is all NaN
+    ok = simulate(-A, None, [1.0, 1.0], t, replicates=3, seed=1, overflow="nan")
+    assert np.isfinite(ok.values).all()
+    np.testing.assert_array_equal(
+        ok.values, simulate(-A, None, [1.0, 1.0], t, replicates=3, seed=1).values
+    )
