@@ -279,11 +279,22 @@ class Fit:
         }
 
     def to_json(self, path: str | os.PathLike | None = None, indent: int = 2) -> str:
-        """JSON text of :meth:`to_dict`; written atomically to ``path`` when given."""
+        """JSON text of :meth:`to_dict`; written atomically to ``path`` when given.
+
+        Raises
+        ------
+        OutputError
+            ``path`` is the recording's own input file, or is a folder or not a
+            regular file (the command line's ``--json`` checks the same).
+        """
         text = json.dumps(self.to_dict(), indent=indent, allow_nan=False, default=_json_default)
         if path is not None:
             from fitdyn.atomic import write_text
+            from fitdyn.safety import check_outputs
 
+            source = getattr(self.recording, "source", None)
+            inputs = [source] if isinstance(source, str) and os.path.isfile(source) else []
+            check_outputs([("to_json path", path)], inputs)
             write_text(path, text + "\n")
         return text
 

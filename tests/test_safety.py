@@ -728,3 +728,21 @@ def test_plan_outputs_never_replace_its_inputs(tmp_path):
     for opt in ("--table", "--plot", "--json"):
         assert main(["plan", str(src), opt, str(src), "--quiet"]) == 2
         assert src.read_bytes() == before
+
+
+def test_library_to_json_never_writes_over_its_input(tmp_path):
+    # The library call guards its output as the command line's --json does.
+    rec = fitdyn.simulate([[-0.3, 1.0], [-1.0, -0.3]], [1.0, 2.0], [3.0, 0.0],
+                          np.linspace(0, 20, 120), measurement_noise=0.05, seed=3)  # fmt: skip
+    src = tmp_path / "bench.csv"
+    write_csv(rec, src)
+    before = src.read_bytes()
+    fit = fitdyn.fit(str(src), bootstrap=0, quiet=True)
+    with pytest.raises(OutputError, match="input file"):
+        fit.to_json(src)
+    assert src.read_bytes() == before
+    with pytest.raises(OutputError, match="folder"):
+        fit.to_json(tmp_path)
+    out = tmp_path / "result.json"
+    fit.to_json(out)
+    assert json.loads(out.read_text())["schema"].startswith("fitdyn/")
