@@ -65,7 +65,8 @@
 ``agreement``
     A cheap second estimator suited to the same noise (:data:`SECOND_ESTIMATOR`:
     the integral regression against the output-error fit, the one-step fit on every
-    second sample against the one-step fit) is fitted and its trace and determinant
+    second sample against the one-step fit -- discrete, prediction-error and
+    nonlinear instrumental) is fitted and its trace and determinant
     compared with the chosen estimator's: ``|difference| / sqrt(var1 + var2)`` from
     their asymptotic covariances (conservative: the two are positively correlated).
     Estimators with no cheap partner that has a covariance are not compared (the
@@ -179,7 +180,9 @@ SECOND_ESTIMATOR: dict[str, tuple[str, dict[str, Any], bool] | None] = {
     "prediction": ("prediction", {}, True),
     "kalman": None,
     "instrumental": None,
-    "nonlinear-iv": None,
+    # its own fit on every second sample (noise levels by moments: only the drift
+    # and its sandwich covariance are compared)
+    "nonlinear-iv": ("nonlinear-iv", {"noise": "moments"}, True),
 }
 
 _VERDICTS = ("pass", "warn", "fail")

@@ -449,6 +449,33 @@ def test_agreement_fails_when_the_chosen_estimate_is_off(good_fit):
     assert "disagree" in d.advice
 
 
+def test_agreement_compares_the_nonlinear_instrumental_fit_with_itself_thinned():
+    # Irregular steps with process and sensor noise, simulated here by Euler-Maruyama
+    # at a fine step (0.01; common practice, no source), not by the package's own
+    # simulator, then sampled at 300 random times: the nonlinear instrumental fit's
+    # agreement check compares it with its own fit on
+    # every second sample; a matrix three times too fast does not pass it (its
+    # intervals are wide under this much noise: 1.5 times is 3 standard errors).
+    from fitdyn.estimators import get_estimator
+
+    A = np.array([[-0.3, 1.0], [-1.0, -0.3]])
+    rng = np.random.default_rng(17)
+    fine = np.arange(0.0, 60.0, 0.01)
+    x = np.empty((fine.size, 2))
+    x[0] = [3.0, 0.0]
+    for k in range(fine.size - 1):
+        x[k + 1] = x[k] + 0.01 * (A @ x[k]) + np.sqrt(0.01 * 0.3) * rng.standard_normal(2)
+    pick = np.sort(rng.choice(fine.size, 300, replace=False))
+    y = x[pick] + 0.3 * rng.standard_normal((300, 2))
+    rec = fitdyn.read((fine[pick], y))
+    est = get_estimator("nonlinear-iv", noise="moments").fit(rec)
+    d = {x.name: x for x in dg.check(rec, est)}["agreement"]
+    assert d.statistic is not None and d.verdict == "pass", d.advice
+    assert "nonlinear-iv on every second sample" in d.advice
+    off = replace(est, matrix=est.matrix * 3.0)
+    assert {x.name: x for x in dg.check(rec, off)}["agreement"].verdict != "pass"
+
+
 # -- outputs --------------------------------------------------------------------------------
 def test_unreliable_reason_reads_dicts_and_objects():
     ok = dg.Diagnostic("sampling", 0.1, 1.0, "pass", "")
