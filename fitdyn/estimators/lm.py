@@ -24,7 +24,11 @@ cost is taken and ``lam`` shrinks, otherwise ``lam`` grows.  A row has converged
   tenfold per step.
 
 A row whose damping runs away while the predicted decrease is below ``stall_tol``
-has reached the rounding level of its cost and counts as converged.  A row *fails*
+has reached the rounding level of its cost and counts as converged, and so does a
+row whose step is rejected while its cost is below ``settle`` times its scale (a
+system of equations solved to its rounding level).  The starting damping
+(``damping``) can be made small for starts next to their solution, such as
+bootstrap refits started at the point estimate.  A row *fails*
 when its damping runs away (no step lowers the cost), when its cost
 or Jacobian stops being finite, at the iteration cap, or when the time budget runs
 out; it is then reported as not converged (``converged = False``), with the reason
