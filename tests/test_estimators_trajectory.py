@@ -225,10 +225,17 @@ def test_analytic_jacobian_matches_finite_differences(kind, R):
 
 @pytest.mark.parametrize("kind", ["equilibrium", "offset", "known"])
 def test_projected_jacobian_matches_finite_differences(kind):
-    """Kaufman's variable-projection Jacobian has the exact gradient J' e."""
+    """Kaufman's variable-projection Jacobian has the exact gradient J' e, and the
+    products the solver is given (J'J and J'e, formed without the projection) are
+    those of that Jacobian."""
     bt, theta = _batch_problem(kind, seed=5)
     a = theta[:, :4]
-    e, Jr, _ = tr._evaluate_projected(a, bt, True)
+    _, e, Jr = tr._projected(a, bt, True)
+    _, normal, _ = tr._evaluate_projected(a, bt, True)
+    JrT = np.swapaxes(Jr, 1, 2)
+    np.testing.assert_allclose(normal.jtj, JrT @ Jr, rtol=1e-8, atol=1e-10 * np.abs(JrT @ Jr).max())
+    np.testing.assert_allclose(normal.grad, np.einsum("bmi,bm->bi", Jr, e), rtol=1e-7,
+                               atol=1e-9 * np.abs(normal.grad).max())  # fmt: skip
     step = 1e-6
     for k in range(4):
         d = np.zeros_like(a)

@@ -45,7 +45,15 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["Solution", "TimeBudget", "levenberg_marquardt", "solve_spd", "sum_of_squares", "STATUS"]
+__all__ = [
+    "Normal",
+    "Solution",
+    "TimeBudget",
+    "levenberg_marquardt",
+    "solve_spd",
+    "sum_of_squares",
+    "STATUS",
+]
 
 #: predicted relative decrease below which Gauss-Newton steps are taken untested
 _ROUNDING_ZONE = 1e-12
@@ -103,6 +111,27 @@ class Solution:
             if key and k:
                 out[text] = k
         return out
+
+
+@dataclass
+class Normal:
+    """What an ``evaluate`` may return instead of the Jacobian ``J``: the products
+    ``J'J`` (B, P, P) and ``J'e`` (B, P), when it can form them more cheaply than
+    ``J`` itself (variable projection: ``J'J`` of the projected Jacobian from the
+    unprojected one, without forming the projection)."""
+
+    jtj: np.ndarray
+    grad: np.ndarray
+
+
+def _products(J: Any, e: np.ndarray, P: int) -> tuple[np.ndarray, np.ndarray]:
+    """``J'J`` and ``J'e`` of a batch, from ``J`` (B, ..., P) or a :class:`Normal`."""
+    if isinstance(J, Normal):
+        return np.asarray(J.jtj, dtype=float), np.asarray(J.grad, dtype=float)
+    B = e.shape[0]
+    Jr = J.reshape(B, -1, P)
+    Jt = np.swapaxes(Jr, 1, 2)
+    return Jt @ Jr, (Jt @ e.reshape(B, -1)[:, :, None])[..., 0]
 
 
 def sum_of_squares(e: np.ndarray) -> np.ndarray:
@@ -167,9 +196,10 @@ def levenberg_marquardt(
     evaluate : callable
         ``evaluate(theta, prob, jacobian)`` returns the residuals ``e`` of shape
         (B, ...) and, when ``jacobian`` is true, ``de / dtheta`` of shape
-        (B, ..., P) (else ``None``); optionally a third value, any per-row array
-        (B, ...) carried along with the accepted parameters and returned as
-        :attr:`Solution.aux` (e.g. parameters eliminated by variable projection).
+        (B, ..., P) or its products as a :class:`Normal` (else ``None``);
+        optionally a third value, any per-row array (B, ...) carried along with
+        the accepted parameters and returned as :attr:`Solution.aux` (e.g.
+        parameters eliminated by variable projection).
     scale : ndarray, shape (B,)
         Size of a cost that counts as exact zero, times 1e28 (e.g. the sum of
         squares of the data).
@@ -209,8 +239,8 @@ def levenberg_marquardt(
     e, J = out[0], out[1]
     aux = np.array(out[2]) if len(out) > 2 else None
     assert J is not None
-    Jf = np.array(J.reshape(B, -1, P))
     ef = np.array(e.reshape(B, -1))
+    NJ, NG = _products(J, ef, P)  # J'J and J'e of every row at its current point
     cost = sum_of_squares(ef)
     scale = np.broadcast_to(np.asarray(scale, dtype=float), (B,))
     lam = np.full(B, float(damping))
@@ -218,7 +248,11 @@ def levenberg_marquardt(
     nu = np.full(B, 2.0)
     converged = np.zeros(B, dtype=bool)
     status = np.ones(B, dtype=int)
-    failed = ~np.isfinite(cost) | ~np.all(np.isfinite(Jf), axis=(1, 2))
+    failed = (
+        ~np.isfinite(cost)
+        | ~np.all(np.isfinite(NJ), axis=(1, 2))
+        | ~np.all(np.isfinite(NG), axis=1)
+    )
     status[failed] = 4
     iters = np.zeros(B, dtype=int)
     eye = np.eye(P)
@@ -231,9 +265,8 @@ def levenberg_marquardt(
             status[act] = 2
             break
         iters[act] += 1
-        Ja = Jf if act.size == B else Jf[act]  # no copy while every row iterates
-        JtJ = np.swapaxes(Ja, 1, 2) @ Ja
-        grad = (np.swapaxes(Ja, 1, 2) @ ef[act][:, :, None])[..., 0]
+        JtJ = NJ[act]
+        grad = NG[act]
         diag = np.diagonal(JtJ, axis1=1, axis2=2)
         Dm = np.maximum(diag, 1e-12 * np.max(diag, axis=1, keepdims=True) + 1e-300)
         # the undamped step (with a rounding-level ridge) and its predicted decrease
@@ -267,16 +300,22 @@ def levenberg_marquardt(
         out = evaluate(trial, prob if act.size == B else prob.take(act), True)
         e_new, J_new = out[0], out[1]
         assert J_new is not None
-        J_new = J_new.reshape(act.size, -1, P)
         e_new = e_new.reshape(act.size, -1)
+        nj_new, ng_new = _products(J_new, e_new, P)
         c_new = sum_of_squares(e_new)
         cost_old = cost[act]
-        finite = np.isfinite(c_new) & np.all(np.isfinite(J_new), axis=(1, 2))
+        with np.errstate(invalid="ignore"):
+            finite = (
+                np.isfinite(c_new)
+                & np.all(np.isfinite(nj_new), axis=(1, 2))
+                & np.all(np.isfinite(ng_new), axis=1)
+            )
         accept = finite & (zone | (ok_step & (c_new < cost[act])))
         idx = act[accept]
         theta[idx] = trial[accept]
         cost[idx] = c_new[accept]
-        Jf[idx] = J_new[accept]
+        NJ[idx] = nj_new[accept]
+        NG[idx] = ng_new[accept]
         ef[idx] = e_new[accept]
         if aux is not None:
             aux[idx] = out[2][accept]

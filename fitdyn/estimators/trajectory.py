@@ -92,7 +92,7 @@ from fitdyn.errors import EstimationError, FitdynError, TooFewSamplesError
 from fitdyn.estimators.auto import residual_lag1
 from fitdyn.estimators.base import Estimate, NonlinearEstimator, SystemBatch
 from fitdyn.estimators.derivative import check_equilibrium, reject_unknown, replicate_values
-from fitdyn.estimators.lm import STATUS, Solution, levenberg_marquardt
+from fitdyn.estimators.lm import STATUS, Normal, Solution, levenberg_marquardt
 from fitdyn.recording import Recording
 
 __all__ = ["TrajectoryEstimator"]
@@ -120,6 +120,9 @@ _CHUNK_BYTES = 16 * 2**20
 #: channel's spread (machine epsilon 2.2e-16 times 1e12), so the fit matches the data
 #: only by cancelling digits double precision does not hold
 _MAX_AMPLIFICATION = 1e12
+#: the projected Jacobian's J'J is formed from the unprojected one unless the
+#: projection leaves less than this fraction of its trace (digits cancel)
+_CANCEL = 1e-8
 #: failure reason of a replicate whose model amplifies rounding beyond that
 _WILD = "model beyond double precision"
 #: failure reason of every replicate of a point fit that did not converge
@@ -462,11 +465,14 @@ class _LeastSquares:
         return c, r
 
 
-def _projected(a: np.ndarray, bt: _Batch, jacobian: bool):
+def _projected(a: np.ndarray, bt: _Batch, jacobian: bool, normal: bool = False):
     """Full parameters and, optionally, the variable-projection residuals and Jacobian.
 
     Returns ``theta`` (B, P), the weighted residuals ``e`` (B, 2 n) and ``Jr`` (B, 2 n,
-    4) (``None`` unless ``jacobian``).
+    4) (``None`` unless ``jacobian``).  With ``normal``, ``Jr`` is replaced by its
+    products ``Jr'Jr`` and ``Jr'e`` (a :class:`~fitdyn.estimators.lm.Normal`), formed
+    from the unprojected Jacobian ``JA`` and ``G = M'JA`` as ``JA'JA - G'(M'M)^-1 G``
+    and ``JA'e - G'(M'M)^-1 M'e`` without forming the projection.
     """
     B = a.shape[0]
     R = bt.n_traj
@@ -542,7 +548,32 @@ def _projected(a: np.ndarray, bt: _Batch, jacobian: bool):
                 X, bt.tau, bb, (h2, pa_s, pa_q, pc, pc_s, pc_q)
             )
         JA *= -bt.w[:, None, :, None]
-        Jr = ls.solve(JA.reshape(B, -1, 4), refine=False)[1]
+        JAf = JA.reshape(B, -1, 4)
+        if normal:
+            JAt = np.swapaxes(JAf, 1, 2)
+            MT = np.swapaxes(ls.M, 1, 2)
+            G = MT @ JAf  # (B, L, 4)
+            NG = ls.Ninv @ G
+            full = JAt @ JAf
+            jtj = full - np.swapaxes(G, 1, 2) @ NG
+            jtj = 0.5 * (jtj + np.swapaxes(jtj, 1, 2))
+            grad = (JAt @ e[:, :, None])[..., 0] - np.einsum(
+                "bli,bl->bi", NG, (MT @ e[:, :, None])[..., 0]
+            )
+            # where the projection removes all but a sliver of JA (more than eight
+            # digits cancel), form the projected Jacobian itself for those rows
+            kept = np.trace(jtj, axis1=1, axis2=2)
+            whole = np.trace(full, axis1=1, axis2=2)
+            with np.errstate(invalid="ignore"):
+                thin = np.flatnonzero(~(kept > _CANCEL * whole))
+            if thin.size:
+                Mt, Jt_ = ls.M[thin], JAf[thin]
+                Jr_t = Jt_ - Mt @ (ls.Ninv[thin] @ (np.swapaxes(Mt, 1, 2) @ Jt_))
+                Jrt = np.swapaxes(Jr_t, 1, 2)
+                jtj[thin] = Jrt @ Jr_t
+                grad[thin] = (Jrt @ e[thin][:, :, None])[..., 0]
+            return theta, e, Normal(jtj, grad)
+        Jr = ls.solve(JAf, refine=False)[1]
     return theta, e, Jr
 
 
@@ -562,7 +593,7 @@ def _evaluate_projected(a: np.ndarray, bt: _Batch, jacobian: bool):
     (four parameters) is far better conditioned than the full one, whose starting
     states and equilibrium are nearly collinear for diverging trajectories.
     """
-    theta, e, Jr = _projected(a, bt, True)
+    theta, e, Jr = _projected(a, bt, True, normal=True)
     return e, Jr, theta
 
 
