@@ -214,6 +214,38 @@ def test_ljung_box_statistic_matches_the_formula():
         from scipy.stats import chi2
 
         assert w.p_value[j] == pytest.approx(chi2.sf(q, 10), rel=1e-10)
+    # and the same numbers as statsmodels' acorr_ljungbox (a reference library), also
+    # with degrees of freedom taken off for a fitted model
+    from statsmodels.stats.diagnostic import acorr_ljungbox
+
+    for j in range(2):
+        ref = acorr_ljungbox(x[:, j], lags=[10], return_df=True)
+        assert w.statistic[j] == pytest.approx(float(ref["lb_stat"].iloc[0]), rel=1e-10)
+        assert w.p_value[j] == pytest.approx(float(ref["lb_pvalue"].iloc[0]), rel=1e-9)
+    y = np.cumsum(rng.normal(size=120)) * 0.05 + rng.normal(size=120)
+    wi = dg.whiteness_test(np.column_stack([y, y[::-1]]), method="instrumental")
+    assert wi.filtered and wi.dof == 9
+    xi = dg._ma1_innovations(y)
+    ref = acorr_ljungbox(xi, lags=[10], model_df=1, return_df=True)
+    assert wi.statistic[0] == pytest.approx(float(ref["lb_stat"].iloc[0]), rel=1e-10)
+    assert wi.p_value[0] == pytest.approx(float(ref["lb_pvalue"].iloc[0]), rel=1e-9)
+
+
+def test_f_test_matches_statsmodels_nested_ols():
+    # The nested F test of the nonlinearity check against statsmodels' OLS
+    # compare_f_test (a reference library) on random regressors.
+    import statsmodels.api as sm
+
+    rng = np.random.default_rng(4)
+    Zr = np.column_stack([np.ones(80), rng.normal(size=(80, 2))])
+    Zx = rng.normal(size=(80, 3))
+    y = Zr @ [0.5, 1.0, -2.0] + 0.3 * Zx[:, 0] + rng.normal(size=80)
+    F, p, _ = dg._f_test(y[:, None], Zr, Zx)
+    full = sm.OLS(y, np.column_stack([Zr, Zx])).fit()
+    small = sm.OLS(y, Zr).fit()
+    F_ref, p_ref, _ = full.compare_f_test(small)
+    assert F[0] == pytest.approx(F_ref, rel=1e-9)
+    assert p[0] == pytest.approx(p_ref, rel=1e-9)
 
 
 def test_moving_average_is_removed_for_the_instrumental_fits():
