@@ -543,30 +543,21 @@ _FTOL = 1e-20
 
 def _levenberg_marquardt(
     theta0: np.ndarray,
-    prob: Any,
+    prob: _Problem,
     max_iter: int,
     xtol: float,
-    ftol: float = _FTOL,
-    evaluate: Callable[..., tuple[np.ndarray, np.ndarray | None]] | None = None,
-    scale: np.ndarray | None = None,
     time_budget: float | None = None,
 ) -> Solution:
     """The shared batched core (:func:`fitdyn.estimators.lm.levenberg_marquardt`) on
-    one-step problems.
+    the weighted one-step errors of a :class:`_Problem`, ``x*`` eliminated when it is
+    fitted (:func:`solve_one_step`).
 
-    ``evaluate`` defaults to the weighted one-step errors of a :class:`_Problem`;
-    ``scale`` (B,) is the size of a cost that counts as exact zero times 1e28
-    (default: from the data); ``time_budget`` (seconds) stops the rows still
-    iterating, as not converged.
+    A cost below 1e-28 of the data's scale counts as exact zero; ``time_budget``
+    (seconds) stops the rows still iterating, as not converged.
     """
-    if scale is None:
-        scale = np.sum(prob.u1 * prob.u1, axis=(1, 2)) * float(np.max(prob.root)) ** 2
-    if evaluate is not None:
-        return levenberg_marquardt(
-            theta0, prob, evaluate, scale, max_iter, xtol, ftol, time_budget=time_budget
-        )
+    scale = np.sum(prob.u1 * prob.u1, axis=(1, 2)) * float(np.max(prob.root)) ** 2
     return solve_one_step(
-        theta0, prob, _evaluate, scale, max_iter, xtol, ftol, time_budget, _evaluate_projected
+        theta0, prob, _evaluate, scale, max_iter, xtol, _FTOL, time_budget, _evaluate_projected
     )
 
 

@@ -445,6 +445,12 @@ class _LeastSquares:
         Ninv[bad] = np.nan
         self.M, self.Ninv = M, Ninv / outer
 
+    def take(self, idx: np.ndarray) -> _LeastSquares:
+        """The designs of rows ``idx`` (their inverses reused, not recomputed)."""
+        out = object.__new__(_LeastSquares)
+        out.M, out.Ninv = self.M[idx], self.Ninv[idx]
+        return out
+
     def solve(self, rhs: np.ndarray, refine: bool = True) -> tuple[np.ndarray, np.ndarray]:
         """Coefficients (B, L, k) and residuals (B, m, k) for right-hand sides (B, m, k).
 
@@ -567,8 +573,7 @@ def _projected(a: np.ndarray, bt: _Batch, jacobian: bool, normal: bool = False):
             with np.errstate(invalid="ignore"):
                 thin = np.flatnonzero(~(kept > _CANCEL * whole))
             if thin.size:
-                Mt, Jt_ = ls.M[thin], JAf[thin]
-                Jr_t = Jt_ - Mt @ (ls.Ninv[thin] @ (np.swapaxes(Mt, 1, 2) @ Jt_))
+                Jr_t = ls.take(thin).solve(JAf[thin], refine=False)[1]
                 Jrt = np.swapaxes(Jr_t, 1, 2)
                 jtj[thin] = Jrt @ Jr_t
                 grad[thin] = (Jrt @ e[thin][:, :, None])[..., 0]
@@ -1056,8 +1061,6 @@ class TrajectoryEstimator(NonlinearEstimator):
         }
         screened = None
         if how == "estimated" and self._screen_lag1 is not None:
-            from fitdyn.estimators.auto import residual_lag1
-
             bt0 = _batch(prob, kind, prob.y, w)
             _, e0, _ = _projected(np.ascontiguousarray(theta[None, :4]), bt0, False)
             lag = residual_lag1(e0.reshape(-1, 2), rec.segment)
